@@ -1,0 +1,9 @@
+"""Shared test fixtures."""
+
+import numpy as np
+import pytest
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(20261201)

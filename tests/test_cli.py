@@ -1,0 +1,63 @@
+"""The command-line shell: exit codes, one-line errors, outputs."""
+
+import json
+
+import pytest
+
+from swerve import __version__
+from swerve.cli import main
+
+
+def test_version(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0
+    assert __version__ in capsys.readouterr().out
+
+
+def test_no_command_prints_help(capsys):
+    assert main([]) == 2
+    assert "galaxy" in capsys.readouterr().out
+
+
+def test_galaxy_prints_model_and_measurements(capsys):
+    assert main(["galaxy"]) == 0
+    out = capsys.readouterr().out
+    assert "swerve-mw-1" in out and "MiyamotoNagaiDisk" in out
+    assert "Eilers" in out and "Williams" in out
+    # v_c(8.122) of the default model, 232.5 km/s (cf. test_galaxy)
+    assert "232.5" in out
+
+
+def test_galaxy_json_and_params(capsys):
+    assert main(["galaxy", "--json", "--param", "q_z=0.7", "--radii", "50"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["galaxy"]["name"] == "swerve-mw-1+custom"
+    assert out["negative_density_region"]["axis"] == "z"
+    assert out["negative_density_region"]["m_over_rs"] == pytest.approx(2.05, rel=3e-3)
+
+
+def test_galaxy_plot(tmp_path, capsys):
+    path = tmp_path / "curves.png"
+    assert main(["galaxy", "--plot", str(path)]) == 0
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temp left over
+
+
+@pytest.mark.parametrize(
+    "argv, fragment",
+    [
+        (["galaxy", "--param", "q_z=-1"], "q_z"),
+        (["galaxy", "--param", "q_z"], "NAME=VALUE"),
+        (["galaxy", "--param", "q_z=abc"], "not a number"),
+        (["galaxy", "--param", "qq=1"], "unknown Galaxy parameter"),
+        (["galaxy", "--model", "nope"], "unknown Galaxy model"),
+        (["galaxy", "--radii", "a,b"], "--radii"),
+        (["galaxy", "--plot", "/nonexistent/dir/x.png"], "does not exist"),
+    ],
+)
+def test_galaxy_bad_input_is_one_line(argv, fragment, capsys):
+    assert main(argv) == 1
+    err = capsys.readouterr().err
+    assert fragment in err
+    assert err.count("\n") == 1 and "Traceback" not in err
