@@ -1,0 +1,276 @@
+"""Summary statistics of a selected present-day population: what the emulator learns.
+
+The population is described by its velocity components in the galactocentric spherical frame,
+
+* ``v_r``: radial velocity (km/s);
+* ``v_tf`` = v_θ · sign(z): the folded polar deflection, positive toward the disk plane;
+* ``v_pf`` = v_φ · sign(x y): the folded azimuthal deflection (a triaxial halo aligned with
+  the axes torques a radial orbit in z by ``∝ x y (1/q_y² − 1)``, so the folding makes the
+  sign of the mean depend only on q_y: positive for q_y > 1),
+
+conditioned on the star's position through **cells**: bins of galactocentric radius ``r`` and of
+the absolute galactocentric latitude ``|β| = |90° − θ|`` (the deflection vanishes on the
+axis and in the plane, so any model of it must depend on latitude, not only on r).
+
+In each cell the summary is the weighted mean vector and covariance matrix of
+(v_r, v_tf, v_pf), written through the covariance's Cholesky factor ``L`` (lower triangular,
+``Σ = L Lᵀ``) as nine numbers, so that every real vector the emulator predicts maps to a valid
+covariance:
+
+``mean_vr, mean_vtf, mean_vpf, log_l_rr, log_l_tt, log_l_pp, l_tr, l_pr, l_pt``
+
+``l_rr`` is the standard deviation of v_r; ``l_tr / l_rr`` the regression slope of v_tf on v_r
+and ``l_tt`` the scatter of v_tf at fixed v_r; ``l_pp`` the scatter of v_pf at fixed
+(v_r, v_tf) (km/s; logs natural). The likelihood uses them as a Gaussian density of the three
+components in each cell (a synthetic likelihood in the sense of Wood 2010, Nature 466, 1102),
+so that a star's tangential velocity is modelled conditionally on its radial velocity
+through the cell's covariance.
+
+Simulation noise: every summary gets a variance from a Poisson bootstrap over orbits (each
+orbit of the bank, with all its samples, is one independent unit; samples along one
+trajectory are correlated, so resampling samples would underestimate the noise).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+STAT_NAMES = (
+    "mean_vr", "mean_vtf", "mean_vpf",
+    "log_l_rr", "log_l_tt", "log_l_pp",
+    "l_tr", "l_pr", "l_pt",
+)
+N_STAT = len(STAT_NAMES)
+
+
+@dataclass(frozen=True)
+class SummarySpec:
+    """Definition of the summaries (stated as data; recorded in every emulator).
+
+    Parameters
+    ----------
+    r_edges : tuple of float
+        Galactocentric radius bin edges, kpc, increasing.
+    lat_edges : tuple of float
+        Absolute galactocentric latitude bin edges, deg, increasing within [0, 90].
+    min_ess : float
+        Smallest effective sample size accepted in a cell.
+    n_boot : int
+        Poisson-bootstrap replicates for the simulation noise.
+    """
+
+    r_edges: tuple = (10.0, 20.0, 35.0, 60.0, 100.0, 250.0)
+    lat_edges: tuple = (0.0, 30.0, 60.0, 90.0)
+    min_ess: float = 30.0
+    n_boot: int = 64
+
+    def __post_init__(self):
+        r = np.asarray(self.r_edges, dtype=float)
+        b = np.asarray(self.lat_edges, dtype=float)
+        if r.ndim != 1 or len(r) < 2 or np.any(np.diff(r) <= 0) or r[0] < 0 or not np.all(np.isfinite(r)):
+            raise ValueError(f"summaries r_edges: expected at least two increasing radii >= 0 kpc, got {self.r_edges!r}")
+        if b.ndim != 1 or len(b) < 2 or np.any(np.diff(b) <= 0) or b[0] < 0 or b[-1] > 90:
+            raise ValueError(f"summaries lat_edges: expected increasing latitudes within [0, 90] deg, got {self.lat_edges!r}")
+        if not self.min_ess > 0:
+            raise ValueError(f"summaries min_ess: expected a positive number, got {self.min_ess!r}")
+        if int(self.n_boot) < 8:
+            raise ValueError(f"summaries n_boot: expected at least 8 bootstrap replicates, got {self.n_boot!r}")
+        object.__setattr__(self, "r_edges", tuple(float(x) for x in r))
+        object.__setattr__(self, "lat_edges", tuple(float(x) for x in b))
+        object.__setattr__(self, "n_boot", int(self.n_boot))
+
+    @property
+    def n_r(self) -> int:
+        return len(self.r_edges) - 1
+
+    @property
+    def n_lat(self) -> int:
+        return len(self.lat_edges) - 1
+
+    @property
+    def n_cells(self) -> int:
+        return self.n_r * self.n_lat
+
+    @property
+    def n_outputs(self) -> int:
+        return self.n_cells * N_STAT
+
+    def output_names(self) -> list[str]:
+        return [f"cell{c:02d}_{s}" for c in range(self.n_cells) for s in STAT_NAMES]
+
+    def cell_labels(self) -> list[str]:
+        out = []
+        for i in range(self.n_r):
+            for j in range(self.n_lat):
+                out.append(
+                    f"r {self.r_edges[i]:g}-{self.r_edges[i + 1]:g} kpc, |lat| "
+                    f"{self.lat_edges[j]:g}-{self.lat_edges[j + 1]:g} deg"
+                )
+        return out
+
+    def cell_index(self, pos) -> np.ndarray:
+        """Cell of each position (n, 3) in kpc; -1 outside every cell."""
+        pos = np.asarray(pos, dtype=float)
+        r = np.sqrt(np.sum(pos * pos, axis=-1))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            lat = np.degrees(np.arcsin(np.clip(np.abs(pos[..., 2]) / r, 0.0, 1.0)))
+        ir = np.searchsorted(self.r_edges, r, side="right") - 1
+        ib = np.searchsorted(self.lat_edges, lat, side="right") - 1
+        ib = np.where(lat == self.lat_edges[-1], self.n_lat - 1, ib)
+        ok = (ir >= 0) & (ir < self.n_r) & (ib >= 0) & (ib < self.n_lat) & np.isfinite(r)
+        return np.where(ok, ir * self.n_lat + ib, -1).astype(np.int64)
+
+    def to_dict(self) -> dict:
+        return {
+            "r_edges": list(self.r_edges),
+            "lat_edges": list(self.lat_edges),
+            "min_ess": self.min_ess,
+            "n_boot": self.n_boot,
+            "stats": list(STAT_NAMES),
+            "components": ["v_r", "v_theta*sign(z)", "v_phi*sign(x*y)"],
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "SummarySpec":
+        d = {k: v for k, v in d.items() if k in ("r_edges", "lat_edges", "min_ess", "n_boot")}
+        return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in d.items()})
+
+
+def folded_components(pos, vel) -> np.ndarray:
+    """(v_r, v_tf, v_pf) of positions/velocities (n, 3); see the module docstring. Returns (n, 3).
+
+    z = 0 counts as northern and x y = 0 as positive (sign +1), as in :mod:`swerve.frames`.
+    """
+    pos = np.asarray(pos, dtype=float)
+    vel = np.asarray(vel, dtype=float)
+    x, y, z = pos[..., 0], pos[..., 1], pos[..., 2]
+    vx, vy, vz = vel[..., 0], vel[..., 1], vel[..., 2]
+    R = np.hypot(x, y)
+    r = np.sqrt(R * R + z * z)
+    v_r = (x * vx + y * vy + z * vz) / r
+    with np.errstate(invalid="ignore", divide="ignore"):
+        v_theta = np.where(R > 0, (z * (x * vx + y * vy) / R - R * vz) / r, -vz * np.sign(z))
+        v_phi = np.where(R > 0, (x * vy - y * vx) / R, 0.0)
+    sz = np.where(z >= 0, 1.0, -1.0)
+    sxy = np.where(x * y >= 0, 1.0, -1.0)
+    return np.stack([v_r, v_theta * sz, v_phi * sxy], axis=-1)
+
+
+def _cell_moments(cell, comps, w, n_cells):
+    """Weighted sums per cell: W, sum w v (3), sum w v v^T (6)."""
+    W = np.bincount(cell, weights=w, minlength=n_cells)
+    m = np.stack([np.bincount(cell, weights=w * comps[:, a], minlength=n_cells) for a in range(3)], axis=1)
+    pairs = ((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))
+    s = np.stack(
+        [np.bincount(cell, weights=w * comps[:, a] * comps[:, b], minlength=n_cells) for a, b in pairs], axis=1
+    )
+    return W, m, s
+
+
+def _stats_from_moments(W, m, s):
+    """Nine statistics per cell from weighted sums; NaN where a cell is empty."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = m / W[:, None]
+        c_rr = s[:, 0] / W - mean[:, 0] ** 2
+        c_tt = s[:, 1] / W - mean[:, 1] ** 2
+        c_pp = s[:, 2] / W - mean[:, 2] ** 2
+        c_rt = s[:, 3] / W - mean[:, 0] * mean[:, 1]
+        c_rp = s[:, 4] / W - mean[:, 0] * mean[:, 2]
+        c_tp = s[:, 5] / W - mean[:, 1] * mean[:, 2]
+        tiny = 1e-12
+        l_rr = np.sqrt(np.maximum(c_rr, tiny))
+        l_tr = c_rt / l_rr
+        l_pr = c_rp / l_rr
+        l_tt = np.sqrt(np.maximum(c_tt - l_tr**2, tiny))
+        l_pt = (c_tp - l_pr * l_tr) / l_tt
+        l_pp = np.sqrt(np.maximum(c_pp - l_pr**2 - l_pt**2, tiny))
+        out = np.stack(
+            [mean[:, 0], mean[:, 1], mean[:, 2], np.log(l_rr), np.log(l_tt), np.log(l_pp), l_tr, l_pr, l_pt],
+            axis=1,
+        )
+    return out
+
+
+@dataclass
+class SummaryResult:
+    """Summaries of one population (plain arrays)."""
+
+    values: np.ndarray  # (n_outputs,)
+    noise_var: np.ndarray  # (n_outputs,)
+    ess: np.ndarray  # (n_cells,)
+    n_samples: np.ndarray  # (n_cells,)
+    meta: dict = field(default_factory=dict)
+
+
+def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: bool = True) -> SummaryResult:
+    """Summaries of a selected, weighted population.
+
+    Parameters
+    ----------
+    spec : SummarySpec
+    pos, vel : arrays (n, 3)
+        Galactocentric positions (kpc) and velocities (km/s) of the selected samples.
+    weight : array (n,)
+        Non-negative sample weights.
+    orbit : int array (n,)
+        Index of the independent unit (orbit) each sample belongs to, for the bootstrap.
+    rng : numpy.random.Generator
+    strict : bool
+        Raise when a cell's effective sample size is below ``spec.min_ess`` (default); otherwise
+        leave NaN there.
+    """
+    pos = np.asarray(pos, dtype=float)
+    vel = np.asarray(vel, dtype=float)
+    w = np.asarray(weight, dtype=float)
+    orbit = np.asarray(orbit)
+    if len(pos) == 0:
+        raise ValueError("summaries: the population is empty (the selection kept no star)")
+    cell = spec.cell_index(pos)
+    keep = cell >= 0
+    cell, w_k, orbit_k = cell[keep], w[keep], orbit[keep]
+    comps = folded_components(pos[keep], vel[keep])
+    nc = spec.n_cells
+    W, m, s = _cell_moments(cell, comps, w_k, nc)
+    W2 = np.bincount(cell, weights=w_k**2, minlength=nc)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ess = np.where(W2 > 0, W**2 / W2, 0.0)
+    low = np.flatnonzero(ess < spec.min_ess)
+    if len(low) and strict:
+        labels = spec.cell_labels()
+        raise ValueError(
+            f"summaries: {len(low)} cell(s) have an effective sample size below {spec.min_ess:g} "
+            f"(first: {labels[low[0]]}, ESS {ess[low[0]]:.1f}); enlarge the bank or merge cells"
+        )
+    values = _stats_from_moments(W, m, s).reshape(-1)
+
+    # Poisson bootstrap over orbits
+    uniq, inv = np.unique(orbit_k, return_inverse=True)
+    boots = np.empty((spec.n_boot, values.size))
+    for b in range(spec.n_boot):
+        k = rng.poisson(1.0, size=len(uniq)).astype(float)
+        Wb, mb, sb = _cell_moments(cell, comps, w_k * k[inv], nc)
+        boots[b] = _stats_from_moments(Wb, mb, sb).reshape(-1)
+    with np.errstate(invalid="ignore"):
+        noise_var = np.nanvar(boots, axis=0, ddof=1)
+    counts = np.bincount(cell, minlength=nc)
+    return SummaryResult(values=values, noise_var=noise_var, ess=ess, n_samples=counts,
+                         meta={"n_orbits": int(len(uniq)), "n_boot": spec.n_boot})
+
+
+def stats_to_gaussian(values, n_cells: int):
+    """Per-cell mean vectors (..., n_cells, 3) and covariance matrices (..., n_cells, 3, 3) from
+    summary vectors (..., n_cells * 9); every input maps to a positive-definite covariance."""
+    v = np.asarray(values, dtype=float)
+    v = v.reshape(v.shape[:-1] + (n_cells, N_STAT))
+    mean = v[..., 0:3]
+    L = np.zeros(v.shape[:-1] + (3, 3))
+    L[..., 0, 0] = np.exp(v[..., 3])
+    L[..., 1, 1] = np.exp(v[..., 4])
+    L[..., 2, 2] = np.exp(v[..., 5])
+    L[..., 1, 0] = v[..., 6]
+    L[..., 2, 0] = v[..., 7]
+    L[..., 2, 1] = v[..., 8]
+    cov = L @ np.swapaxes(L, -1, -2)
+    return mean, cov
