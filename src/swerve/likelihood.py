@@ -1,0 +1,329 @@
+"""The likelihood of a catalog given emulated summaries: every star's errors, exactly.
+
+Model
+-----
+In each position cell ``c`` of the summaries (:mod:`swerve.summaries`) the emulator predicts the
+mean ``μ_c(θ)`` and covariance ``Σ_c(θ)`` of the three velocity components
+``u = (v_r, v_θ·sign z, v_φ·sign xy)`` of the selected population.  A star's likelihood is the
+density of its *true* velocity at its *true* position, marginalised over its measurement errors
+(Hogg, Myers & Bovy 2010, ApJ 725, 2166):
+
+* the position uncertainty (distance, from the parallax or a distance measurement) is
+  marginalised by importance sampling over K distance samples per star
+  (:func:`swerve.catalog.draw_samples`), with their θ-independent weights (distance prior and
+  the Jacobian ``J(d) = (κ d)²`` of the map from (pmra, pmdec, vlos) to velocity);
+* at each distance sample the velocity uncertainty is marginalised **analytically**: the
+  measured proper motions (conditional on the sampled parallax, so that parallax–proper-motion
+  correlations hold) and line-of-sight velocity map linearly to a Gaussian in ``u`` with mean
+  ``m_ik`` and covariance ``C_ik``, so ``∫ N(u; μ_c, Σ_c) N(m_ik; u, C_ik) du =
+  N(m_ik; μ_c, Σ_c + C_ik)``.  The tangential signal is a few km/s against errors of tens of
+  km/s, where Monte Carlo over velocity samples would be hopelessly noisy; the analytic form has
+  no such noise.
+
+so that
+
+    log L_i(θ) = log Σ_k w_ik N(m_ik; μ_c(ik)(θ), Σ_c(ik)(θ) + C_ik + E_c(θ)),   Σ_k w_ik = 1,
+
+where ``E_c`` is the emulator's own predictive variance of the cell means (its uncertainty
+folded into the density), and the sum runs over the samples inside the emulator's cells (the
+model is conditional on the star lying inside the selection volume).  Everything that does not
+depend on θ (cells, ``m_ik``, ``C_ik``, ``w_ik``) is computed once, in :func:`prepare_stars`;
+one likelihood call is one emulator prediction and one compiled loop, parallel over walkers.
+
+Stars outside the emulator's selection are never silently used: a star with less than half of
+its sample weight inside the cells, or moving inward (v_r < 0), is excluded and reported.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numba as nb
+import numpy as np
+
+from .summaries import SummarySpec, stats_to_gaussian
+
+_LOG_2PI = math.log(2.0 * math.pi)
+
+
+# ------------------------------------------------------------------ θ-independent star terms
+@dataclass
+class StarTerms:
+    """Precomputed, θ-independent terms of the stars used in a fit (plain arrays).
+
+    Attributes
+    ----------
+    ids : array (n,)
+    cell : int array (n, k)
+        Summary cell of each distance sample (-1 outside every cell).
+    mean : array (n, k, 3)
+        Mean of the star's folded velocity components ``u`` at each sample, km/s.
+    cov : array (n, k, 3, 3)
+        Measurement covariance of ``u`` at each sample, (km/s)².
+    log_w : array (n, k)
+        Normalised log weights of the samples inside the cells (-inf outside).
+    excluded : list of dict
+        Stars left out, each with ``id``, ``row`` and ``reason``.
+    """
+
+    ids: np.ndarray
+    cell: np.ndarray
+    mean: np.ndarray
+    cov: np.ndarray
+    log_w: np.ndarray
+    excluded: list = field(default_factory=list)
+
+    @property
+    def n(self) -> int:
+        return int(self.ids.shape[0])
+
+    def concat(self, other: "StarTerms") -> "StarTerms":
+        """These stars and ``other``'s (same k): a refit after adding stars reuses both."""
+        if other.cell.shape[1] != self.cell.shape[1]:
+            raise ValueError(f"stars: expected {self.cell.shape[1]} samples per star, got {other.cell.shape[1]}")
+        dup = set(map(str, self.ids)) & set(map(str, other.ids))
+        if dup:
+            raise ValueError(f"stars: id {sorted(dup)[0]!r} is already in the fit")
+        return StarTerms(
+            np.concatenate([self.ids, other.ids]),
+            np.concatenate([self.cell, other.cell]),
+            np.concatenate([self.mean, other.mean]),
+            np.concatenate([self.cov, other.cov]),
+            np.concatenate([self.log_w, other.log_w]),
+            self.excluded + other.excluded,
+        )
+
+    def subset(self, keep) -> "StarTerms":
+        keep = np.asarray(keep)
+        return StarTerms(self.ids[keep], self.cell[keep], self.mean[keep], self.cov[keep], self.log_w[keep],
+                         list(self.excluded))
+
+
+def _folding_basis(pos):
+    """Rows (e_r, e_θ·sign z, e_φ·sign xy) at positions (..., 3): array (..., 3, 3)."""
+    x, y, z = pos[..., 0], pos[..., 1], pos[..., 2]
+    R = np.hypot(x, y)
+    r = np.sqrt(R * R + z * z)
+    Rs = np.where(R > 0, R, 1.0)
+    sz = np.where(z >= 0, 1.0, -1.0)
+    sxy = np.where(x * y >= 0, 1.0, -1.0)
+    B = np.empty(pos.shape[:-1] + (3, 3))
+    B[..., 0, 0], B[..., 0, 1], B[..., 0, 2] = x / r, y / r, z / r
+    B[..., 1, 0] = sz * z * x / (Rs * r)
+    B[..., 1, 1] = sz * z * y / (Rs * r)
+    B[..., 1, 2] = -sz * R / r
+    B[..., 2, 0] = -sxy * y / Rs
+    B[..., 2, 1] = sxy * x / Rs
+    B[..., 2, 2] = 0.0
+    return B
+
+
+def velocity_moments(catalog, samples, solar=None):
+    """Galactocentric velocity mean (n, k, 3) and covariance (n, k, 3, 3) of each star at each of
+    its distance samples, from its measured proper motions (conditional on the sampled parallax
+    where the distance comes from the parallax) and line-of-sight velocity.
+
+    The map ``(vlos, pmra, pmdec) -> v = R [r̂, κ d ê_α, κ d ê_δ] (vlos, pmra, pmdec)ᵀ + w`` is
+    linear at fixed distance (:func:`swerve.frames.affine_map`), so the moments are exact.
+    """
+    from .frames import PM_KMS_PER_KPC_MASYR, affine_map
+
+    rot, _t, w_sun = affine_map(solar if solar is not None else samples.settings.get("solar"))
+    n, k = samples.distance.shape
+    ra = np.radians(catalog.ra)
+    dec = np.radians(catalog.dec)
+    rhat = np.stack([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)], -1)
+    e_a = np.stack([-np.sin(ra), np.cos(ra), np.zeros_like(ra)], -1)
+    e_d = np.stack([-np.sin(dec) * np.cos(ra), -np.sin(dec) * np.sin(ra), np.cos(dec)], -1)
+
+    # proper-motion moments at each sample: conditional on the parallax for parallax stars
+    mu = np.stack([catalog.pmra, catalog.pmdec], -1)
+    s1, s2 = catalog.pmra_err, catalog.pmdec_err
+    cmm = np.empty((n, 2, 2))
+    cmm[:, 0, 0], cmm[:, 1, 1] = s1**2, s2**2
+    cmm[:, 0, 1] = cmm[:, 1, 0] = catalog.corr_pmra_pmdec * s1 * s2
+    pm_mean = np.broadcast_to(mu[:, None, :], (n, k, 2)).copy()
+    pm_cov = np.broadcast_to(cmm[:, None], (n, k, 2, 2)).copy()
+    fp = np.asarray(samples.from_parallax, dtype=bool)
+    if fp.any():
+        sp = catalog.parallax_err[fp]
+        c_pw = np.stack([catalog.corr_parallax_pmra[fp] * sp * s1[fp],
+                         catalog.corr_parallax_pmdec[fp] * sp * s2[fp]], -1)
+        gain = c_pw / (sp**2)[:, None]
+        plx_k = 1.0 / samples.distance[fp]
+        pm_mean[fp] = mu[fp, None, :] + gain[:, None, :] * (plx_k - catalog.parallax[fp][:, None])[:, :, None]
+        pm_cov[fp] = (cmm[fp] - c_pw[:, :, None] * c_pw[:, None, :] / (sp**2)[:, None, None])[:, None]
+
+    kd = PM_KMS_PER_KPC_MASYR * samples.distance  # (n, k)
+    # Jacobian columns in ICRS, then rotated: G (n, k, 3, 3) acting on (vlos, pmra, pmdec)
+    G = np.empty((n, k, 3, 3))
+    G[..., :, 0] = (rhat @ rot.T)[:, None, :]
+    G[..., :, 1] = kd[..., None] * (e_a @ rot.T)[:, None, :]
+    G[..., :, 2] = kd[..., None] * (e_d @ rot.T)[:, None, :]
+    obs_mean = np.concatenate([np.broadcast_to(catalog.vlos[:, None, None], (n, k, 1)), pm_mean], -1)
+    obs_cov = np.zeros((n, k, 3, 3))
+    obs_cov[..., 0, 0] = (catalog.vlos_err**2)[:, None]
+    obs_cov[..., 1:, 1:] = pm_cov
+    v_mean = np.einsum("nkij,nkj->nki", G, obs_mean) + w_sun
+    v_cov = G @ obs_cov @ np.swapaxes(G, -1, -2)
+    return v_mean, v_cov
+
+
+def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: float = 0.5) -> StarTerms:
+    """The θ-independent terms of every usable star; stars outside the selection are excluded
+    and listed in ``StarTerms.excluded`` (never silently used).
+
+    Parameters
+    ----------
+    catalog : swerve.catalog.Catalog
+    samples : swerve.catalog.ErrorSamples
+        Distance samples of the same stars (``draw_samples(catalog, k, rng, ...)``).
+    spec : SummarySpec
+        The emulator's summary definition (its cells).
+    min_inside : float
+        Smallest fraction of a star's sample weight inside the cells for it to be used.
+    """
+    if samples.n != catalog.n:
+        raise ValueError(f"samples: expected {catalog.n} stars (the catalog's), got {samples.n}")
+    pos = samples.position
+    cell = spec.cell_index(pos)
+    v_mean, v_cov = velocity_moments(catalog, samples, solar)
+    B = _folding_basis(pos)
+    u_mean = np.einsum("nkij,nkj->nki", B, v_mean)
+    u_cov = B @ v_cov @ np.swapaxes(B, -1, -2)
+    lw = samples.log_weight - np.max(samples.log_weight, axis=1, keepdims=True)
+    w = np.exp(lw)
+    w /= w.sum(axis=1, keepdims=True)
+    inside = np.where(cell >= 0, w, 0.0).sum(axis=1)
+    vr_mean = np.sum(w * u_mean[..., 0], axis=1)
+    excluded = []
+    keep = np.ones(catalog.n, dtype=bool)
+    for i in range(catalog.n):
+        reason = None
+        if inside[i] < min_inside:
+            r_med = float(np.median(np.linalg.norm(pos[i], axis=-1)))
+            reason = (f"only {100 * inside[i]:.0f}% of its distance samples lie inside the emulator's cells "
+                      f"(r in [{spec.r_edges[0]:g}, {spec.r_edges[-1]:g}] kpc; median r = {r_med:.1f} kpc)")
+        elif vr_mean[i] <= 0:
+            reason = f"it moves inward (v_r = {vr_mean[i]:.0f} km/s); the emulator models outgoing stars"
+        if reason:
+            keep[i] = False
+            excluded.append({"id": str(catalog.ids[i]), "row": int(catalog.rows[i]), "reason": reason})
+    w_in = np.where(cell >= 0, w, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_w = np.log(w_in / np.maximum(w_in.sum(axis=1, keepdims=True), 1e-300))
+    terms = StarTerms(np.asarray(catalog.ids), cell, u_mean, u_cov, log_w, excluded)
+    out = terms.subset(keep)
+    out.excluded = excluded
+    if out.n == 0:
+        raise ValueError(
+            f"{catalog.source}: no star is usable inside the emulator's selection "
+            f"({len(excluded)} excluded; first: {excluded[0]['id']!r}: {excluded[0]['reason']})"
+        )
+    return out
+
+
+# ------------------------------------------------------------------------ compiled kernel -----
+@nb.njit(parallel=True, cache=True, fastmath=False)
+def _loglike_kernel(cell, mean, cov, log_w, mu, sig, out):
+    """out[w, i] = log sum_k exp(log_w[i,k]) N(mean[i,k]; mu[w,c], sig[w,c] + cov[i,k])."""
+    W = mu.shape[0]
+    n, k = cell.shape
+    for wi in nb.prange(W):
+        vals = np.empty(k)
+        for i in range(n):
+            vmax = -np.inf
+            for j in range(k):
+                c = cell[i, j]
+                if c < 0 or log_w[i, j] == -np.inf:
+                    vals[j] = -np.inf
+                    continue
+                s00 = sig[wi, c, 0, 0] + cov[i, j, 0, 0]
+                s10 = sig[wi, c, 1, 0] + cov[i, j, 1, 0]
+                s20 = sig[wi, c, 2, 0] + cov[i, j, 2, 0]
+                s11 = sig[wi, c, 1, 1] + cov[i, j, 1, 1]
+                s21 = sig[wi, c, 2, 1] + cov[i, j, 2, 1]
+                s22 = sig[wi, c, 2, 2] + cov[i, j, 2, 2]
+                l00 = math.sqrt(s00)
+                l10 = s10 / l00
+                l20 = s20 / l00
+                l11 = math.sqrt(s11 - l10 * l10)
+                l21 = (s21 - l20 * l10) / l11
+                l22 = math.sqrt(s22 - l20 * l20 - l21 * l21)
+                d0 = mean[i, j, 0] - mu[wi, c, 0]
+                d1 = mean[i, j, 1] - mu[wi, c, 1]
+                d2 = mean[i, j, 2] - mu[wi, c, 2]
+                y0 = d0 / l00
+                y1 = (d1 - l10 * y0) / l11
+                y2 = (d2 - l20 * y0 - l21 * y1) / l22
+                v = (log_w[i, j] - 0.5 * (y0 * y0 + y1 * y1 + y2 * y2)
+                     - math.log(l00 * l11 * l22) - 1.5 * 1.8378770664093453)
+                vals[j] = v
+                if v > vmax:
+                    vmax = v
+            if vmax == -np.inf:
+                out[wi, i] = -np.inf
+                continue
+            acc = 0.0
+            for j in range(k):
+                if vals[j] > -np.inf:
+                    acc += math.exp(vals[j] - vmax)
+            out[wi, i] = vmax + math.log(acc)
+
+
+# ------------------------------------------------------------------------------ likelihood ----
+class Likelihood:
+    """Vectorised log-likelihood of a set of stars under an emulator.
+
+    Parameters
+    ----------
+    emulator : object with ``predict(theta, return_std=True)``, ``parameter_names``, ``bounds``
+        Predicts the summary vector (``spec.n_outputs`` values per θ, in ``spec.output_names()``
+        order).
+    stars : StarTerms
+    spec : SummarySpec
+    include_emulator_variance : bool
+        Fold the emulator's predictive variance of the cell means into the density.
+    """
+
+    def __init__(self, emulator, stars: StarTerms, spec: SummarySpec, include_emulator_variance: bool = True):
+        self.emulator = emulator
+        self.stars = stars
+        self.spec = spec
+        self.include_emulator_variance = include_emulator_variance
+        self.parameter_names = list(emulator.parameter_names)
+
+    def cell_gaussians(self, theta):
+        """Per-walker cell means (W, n_cells, 3) and covariances (W, n_cells, 3, 3)."""
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        if self.include_emulator_variance:
+            y, sd = self.emulator.predict(theta, return_std=True)
+        else:
+            y, sd = self.emulator.predict(theta), None
+        y = np.asarray(y, dtype=float)
+        if y.shape[-1] != self.spec.n_outputs:
+            raise ValueError(
+                f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}"
+            )
+        mu, sig = stats_to_gaussian(y, self.spec.n_cells)
+        if sd is not None:
+            var_mu = (np.asarray(sd, dtype=float).reshape(y.shape[0], self.spec.n_cells, -1)[..., :3]) ** 2
+            sig = sig.copy()
+            for a in range(3):
+                sig[..., a, a] += var_mu[..., a]
+        return np.ascontiguousarray(mu), np.ascontiguousarray(sig)
+
+    def per_star(self, theta) -> np.ndarray:
+        """Log-likelihood of every star, (W, n_stars)."""
+        mu, sig = self.cell_gaussians(theta)
+        out = np.empty((mu.shape[0], self.stars.n))
+        s = self.stars
+        _loglike_kernel(s.cell, s.mean, s.cov, s.log_w, mu, sig, out)
+        return out
+
+    def __call__(self, theta) -> np.ndarray:
+        """Total log-likelihood, (W,) for theta of shape (W, d) (or a float for (d,))."""
+        theta = np.asarray(theta, dtype=float)
+        tot = self.per_star(theta).sum(axis=1)
+        return tot if theta.ndim == 2 else float(tot[0])
