@@ -190,17 +190,13 @@ def test_galactic_centre_at_rest_reflex_motion():
     assert abs(mul - (-6.411)) < 0.05 and abs(mub - (-0.219)) < 0.03
 
 
-def test_a_million_stars_is_fast():
-    import time
-
+def test_a_million_stars_vectorised():
+    """A million stars in one call (the speed itself is measured in benchmarks/frames.py)."""
     s = _random_stars(1_000_000, seed=1)
-    helio_to_galacto(s["ra"][:10], s["dec"][:10], s["distance"][:10], 0, 0, 0)  # warm the cache
-    t0 = time.perf_counter()
     pos, vel = helio_to_galacto(s["ra"], s["dec"], s["distance"], s["pmra"], s["pmdec"], s["vlos"])
     h = galacto_to_helio(pos, vel)
-    elapsed = time.perf_counter() - t0
     assert h["ra"].shape == (1_000_000,)
-    assert elapsed < 5.0
+    np.testing.assert_allclose(h["distance"], s["distance"], rtol=1e-9)
 
 
 def test_bad_inputs_raise():

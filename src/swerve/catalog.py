@@ -1,0 +1,1250 @@
+"""Observed catalogs: reading, validation and per-star error samples.
+
+Reading
+-------
+:func:`read_catalog` reads ECSV, FITS, VOTable and CSV files through :mod:`astropy.table`
+(the format comes from the file name's extension, see :data:`FORMATS`); :func:`catalog_from_table`
+does the same for an in-memory :class:`astropy.table.Table` (a mock catalog, for instance).
+The columns swerve reads are listed in :data:`COLUMNS`:
+
+==========================  ================  ==========  ========================================
+column                      physical type     default     meaning
+==========================  ================  ==========  ========================================
+``id``                      (string or int)   --          star identifier, unique
+``ra``, ``dec``             angle             deg         ICRS position; ra in [0, 360), dec in [-90, 90]
+``distance``                length            kpc         heliocentric distance, > 0
+``distance_err``            length            kpc         its 1-sigma uncertainty, > 0
+``parallax``                angle             mas         parallax
+``parallax_err``            angle             mas         its 1-sigma uncertainty, > 0
+``pmra``, ``pmra_err``      angle / time      mas / yr    proper motion in ra, *including* cos(dec)
+``pmdec``, ``pmdec_err``    angle / time      mas / yr    proper motion in dec
+``vlos``, ``vlos_err``      velocity          km / s      heliocentric line-of-sight velocity
+``corr_pmra_pmdec``         dimensionless     --          correlation coefficient, optional (0)
+``corr_parallax_pmra``      dimensionless     --          optional (0)
+``corr_parallax_pmdec``     dimensionless     --          optional (0)
+==========================  ================  ==========  ========================================
+
+A catalog needs ``distance`` + ``distance_err`` or ``parallax`` + ``parallax_err`` (or both; with
+both, a row may leave one pair empty). Other columns are never an error: they are carried
+along, unvalidated, in :attr:`Catalog.extra`. Units come from the file where it has them and
+are converted to the units above; a unit of the wrong physical type is a problem. Where the
+file has none (CSV) the ``units`` argument (``{"distance": "pc"}``, or the string
+``"distance=pc,pmra=mas/yr"``, see :func:`parse_units`) or else the default above applies.
+A ``units`` entry for a quantity also applies to its ``_err`` column unless that has its own
+entry; likewise an ``_err`` column without a unit in the file takes its quantity's unit from
+the file. For formats that carry units (ECSV, FITS,
+VOTable) a quantity column with no unit in the file and none in ``units`` is a problem unless
+``require_units=False``. Other column names are mapped with ``columns``
+(``{"ra": "RA_deg"}``, or ``"ra=RA_deg,dec=DE_deg"``, see :func:`parse_columns`; a config
+file's ``[catalog]`` table goes through :func:`options_from_config`).
+
+Validation
+----------
+Every problem in a file is collected before anything is refused: a :class:`CatalogError`
+(a ``ValueError``) carries the list of :class:`Problem` records, one line each in its message.
+With ``drop_invalid=True`` rows with problems are dropped instead, and the problems are
+returned in :attr:`Catalog.problems` (and logged at WARNING level); problems that concern a
+whole column (a missing column, a wrong unit) still refuse the file. Unreadable files raise a
+one-line :class:`CatalogError` naming the file.
+
+Error samples
+-------------
+:func:`draw_samples` draws K samples of each star's true observables and transforms them to
+Galactocentric position and velocity once, with per-sample log-weights; see its docstring for
+exactly what the weights mean.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from astropy import units as u
+
+__all__ = [
+    "COLUMNS",
+    "DISTANCE_PRIORS",
+    "FORMATS",
+    "Catalog",
+    "CatalogError",
+    "ErrorSamples",
+    "Problem",
+    "catalog_from_table",
+    "draw_samples",
+    "options_from_config",
+    "parse_columns",
+    "parse_units",
+    "read_catalog",
+]
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class ColumnSpec:
+    """One column swerve reads: its physical type, default unit and whether it is required."""
+
+    name: str
+    physical_type: str | None  # None: not a quantity (the id)
+    unit: str | None  # default (and internal) unit; None for the id
+    required: bool
+    description: str
+
+
+def _spec(name, ptype, unit, required, description):
+    return ColumnSpec(name, ptype, unit, required, description)
+
+
+#: The columns swerve reads, in order, with their physical types and default (internal) units.
+COLUMNS: dict[str, ColumnSpec] = {
+    s.name: s
+    for s in (
+        _spec("id", None, None, True, "star identifier (string or integer), unique"),
+        _spec("ra", "angle", "deg", True, "ICRS right ascension, in [0, 360)"),
+        _spec("dec", "angle", "deg", True, "ICRS declination, in [-90, 90]"),
+        _spec("distance", "length", "kpc", False, "heliocentric distance, > 0"),
+        _spec("distance_err", "length", "kpc", False, "1-sigma uncertainty of distance, > 0"),
+        _spec("parallax", "angle", "mas", False, "parallax"),
+        _spec("parallax_err", "angle", "mas", False, "1-sigma uncertainty of parallax, > 0"),
+        _spec("pmra", "angular velocity", "mas/yr", True, "proper motion in ra, including cos(dec)"),
+        _spec("pmra_err", "angular velocity", "mas/yr", True, "1-sigma uncertainty of pmra, > 0"),
+        _spec("pmdec", "angular velocity", "mas/yr", True, "proper motion in dec"),
+        _spec("pmdec_err", "angular velocity", "mas/yr", True, "1-sigma uncertainty of pmdec, > 0"),
+        _spec("vlos", "velocity", "km/s", True, "heliocentric line-of-sight velocity"),
+        _spec("vlos_err", "velocity", "km/s", True, "1-sigma uncertainty of vlos, > 0"),
+        _spec("corr_pmra_pmdec", "dimensionless", "", False, "correlation of pmra and pmdec, in [-1, 1]"),
+        _spec("corr_parallax_pmra", "dimensionless", "", False, "correlation of parallax and pmra"),
+        _spec("corr_parallax_pmdec", "dimensionless", "", False, "correlation of parallax and pmdec"),
+    )
+}
+
+_QUANTITIES = [name for name, s in COLUMNS.items() if s.physical_type is not None]
+_CORRS = ("corr_pmra_pmdec", "corr_parallax_pmra", "corr_parallax_pmdec")
+_ERR_OF = {"distance_err": "distance", "parallax_err": "parallax", "pmra_err": "pmra",
+           "pmdec_err": "pmdec", "vlos_err": "vlos"}
+
+#: File-name endings (lower case) and the astropy format each is read with.
+FORMATS: dict[str, str] = {
+    ".ecsv": "ascii.ecsv",
+    ".fits": "fits",
+    ".fits.gz": "fits",
+    ".fit": "fits",
+    ".fts": "fits",
+    ".vot": "votable",
+    ".votable": "votable",
+    ".xml": "votable",
+    ".csv": "ascii.csv",
+    ".txt": "ascii.csv",
+}
+_UNIT_FORMATS = {"ascii.ecsv", "fits", "votable"}
+
+#: Distance priors for stars whose distance comes from the parallax (see :func:`draw_samples`).
+DISTANCE_PRIORS = ("none", "uniform-volume", "exponential-length")
+
+_PHYSICAL = {
+    "angle": u.deg,
+    "length": u.kpc,
+    "angular velocity": u.mas / u.yr,
+    "velocity": u.km / u.s,
+    "dimensionless": u.dimensionless_unscaled,
+}
+
+
+# --------------------------------------------------------------------------------------------
+# problems
+
+
+def _fmt_value(value) -> str:
+    if value is None:
+        return "missing"
+    if isinstance(value, (float, np.floating)):
+        return f"value {float(value):.6g}"
+    if isinstance(value, (int, np.integer)):
+        return f"value {int(value)}"
+    if isinstance(value, (bytes, np.bytes_)):
+        return f"value {bytes(value)!r}"
+    text = str(value)
+    if len(text) > 60:
+        text = text[:57] + "..."
+    return f"value {text!r}"
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One thing wrong with a catalog.
+
+    Attributes
+    ----------
+    file : str
+        The file (or the source label of an in-memory table).
+    row : int or None
+        1-based data row (the header is not counted); None for a problem with a whole column
+        or the whole file.
+    id : str or None
+        The star's id where the row has a readable one.
+    column : str or None
+        swerve's column name (see :data:`COLUMNS`); None for the whole file.
+    value : object
+        The offending value (None when missing).
+    expected : str
+        What was expected instead.
+    what : str
+        How the value is described in the message (default: ``"value <value>"``, or
+        ``"missing"`` when ``value`` is None).
+    source_column : str or None
+        The file's name for the column where ``columns`` mapped it to another name.
+    """
+
+    file: str
+    row: int | None
+    id: str | None
+    column: str | None
+    value: object
+    expected: str
+    what: str = ""
+    source_column: str | None = None
+
+    def __str__(self) -> str:
+        where = []
+        if self.row is not None:
+            where.append(f"row {self.row}" + (f" (id {self.id!r})" if self.id is not None else ""))
+        if self.column is not None:
+            col = f"column {self.column!r}"
+            if self.source_column is not None and self.source_column != self.column:
+                col += f" (file column {self.source_column!r})"
+            where.append(col)
+        head = f"{self.file}: " + (", ".join(where) + ": " if where else "")
+        return f"{head}{self.what or _fmt_value(self.value)}, expected {self.expected}"
+
+
+class CatalogError(ValueError):
+    """A catalog that cannot be used; ``problems`` lists every :class:`Problem` found.
+
+    Its message is one line per problem.
+    """
+
+    def __init__(self, problems: Sequence[Problem]):
+        self.problems = list(problems)
+        super().__init__("\n".join(str(p) for p in self.problems))
+
+
+def _file_error(file: str, what: str, expected: str) -> CatalogError:
+    return CatalogError([Problem(file, None, None, None, None, expected, what=what)])
+
+
+def _one_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split())
+    if len(text) > 160:
+        text = text[:157] + "..."
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+# --------------------------------------------------------------------------------------------
+# options
+
+
+def _parse_pairs(text: str, option: str) -> dict[str, str]:
+    if not isinstance(text, str):
+        raise ValueError(f"{option}: expected a string like 'a=b,c=d', got {type(text).__name__}")
+    out: dict[str, str] = {}
+    for item in text.split(","):
+        item = item.strip()
+        if not item:
+            continue
+        key, sep, value = item.partition("=")
+        key, value = key.strip(), value.strip()
+        if not sep or not key or not value:
+            raise ValueError(f"{option}: entry {item!r} is not of the form name=value")
+        if key in out:
+            raise ValueError(f"{option}: {key!r} given twice")
+        out[key] = value
+    return out
+
+
+def _check_names(mapping: Mapping, option: str) -> None:
+    unknown = [k for k in mapping if k not in COLUMNS]
+    if unknown:
+        raise ValueError(
+            f"{option}: unknown column name(s) {', '.join(map(repr, unknown))}; expected some of "
+            f"{', '.join(COLUMNS)}"
+        )
+
+
+def parse_columns(spec) -> dict[str, str]:
+    """Column mapping ``{our_name: file_column}`` from a dict or a string ``"ra=RA_deg,dec=DE"``.
+
+    Raises
+    ------
+    ValueError
+        On a malformed entry or a name that is not one of :data:`COLUMNS`.
+    """
+    if spec is None:
+        return {}
+    mapping = _parse_pairs(spec, "columns") if isinstance(spec, str) else spec
+    if not isinstance(mapping, Mapping):
+        raise ValueError(f"columns: expected a mapping or a string, got {type(spec).__name__}")
+    _check_names(mapping, "columns")
+    out = {}
+    for key, value in mapping.items():
+        if not isinstance(value, str) or not value:
+            raise ValueError(f"columns: {key!r} must map to a column name (string), got {value!r}")
+        out[key] = value
+    targets = list(out.values())
+    dup = sorted({t for t in targets if targets.count(t) > 1})
+    if dup:
+        raise ValueError(f"columns: file column(s) {', '.join(map(repr, dup))} mapped to more than one name")
+    return out
+
+
+def parse_units(spec) -> dict[str, u.UnitBase]:
+    """Units mapping ``{our_name: unit}`` from a dict or a string ``"distance=pc,pmra=mas/yr"``.
+
+    Each unit must parse (astropy's unit syntax) and have the column's physical type.
+
+    Raises
+    ------
+    ValueError
+        On a malformed entry, an unknown column name, an unknown unit or a wrong physical type.
+    """
+    if spec is None:
+        return {}
+    mapping = _parse_pairs(spec, "units") if isinstance(spec, str) else spec
+    if not isinstance(mapping, Mapping):
+        raise ValueError(f"units: expected a mapping or a string, got {type(spec).__name__}")
+    _check_names(mapping, "units")
+    out = {}
+    for key, value in mapping.items():
+        spec_ = COLUMNS[key]
+        if spec_.physical_type is None:
+            raise ValueError(f"units: column {key!r} takes no unit")
+        try:
+            unit = value if isinstance(value, u.UnitBase) else u.Unit(value, parse_strict="raise")
+        except (ValueError, TypeError):
+            raise ValueError(f"units: {key}={value!r} is not a unit astropy understands") from None
+        target = _PHYSICAL[spec_.physical_type]
+        if not unit.is_equivalent(target):
+            raise ValueError(f"units: {key}={value!r} is not a {spec_.physical_type} (like {spec_.unit})")
+        out[key] = unit
+    return out
+
+
+def options_from_config(table: Mapping) -> dict:
+    """Reading options from a config file's ``[catalog]`` table (already parsed TOML).
+
+    Accepted keys: ``columns`` (table or string), ``units`` (table or string),
+    ``drop_invalid`` (bool), ``require_units`` (bool). Returns a dict of keyword arguments
+    for :func:`read_catalog`.
+
+    Examples
+    --------
+    >>> options_from_config({"columns": {"ra": "RA_deg"}, "units": "distance=pc"})["columns"]
+    {'ra': 'RA_deg'}
+    """
+    if not isinstance(table, Mapping):
+        raise ValueError(f"[catalog]: expected a table, got {type(table).__name__}")
+    allowed = {"columns", "units", "drop_invalid", "require_units"}
+    extra = sorted(set(table) - allowed)
+    if extra:
+        raise ValueError(f"[catalog]: unknown key(s) {', '.join(extra)}; "
+                         f"expected some of {', '.join(sorted(allowed))}")
+    out: dict = {}
+    if "columns" in table:
+        out["columns"] = parse_columns(table["columns"])
+    if "units" in table:
+        out["units"] = parse_units(table["units"])
+    for key in ("drop_invalid", "require_units"):
+        if key in table:
+            if not isinstance(table[key], bool):
+                raise ValueError(f"[catalog] {key}: expected true or false, got {table[key]!r}")
+            out[key] = table[key]
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# the catalog
+
+
+@dataclass
+class Catalog:
+    """A validated catalog in swerve's units; every array has shape (n,).
+
+    Attributes
+    ----------
+    ids : array of str
+        Star identifiers.
+    ra, dec : array of float
+        ICRS position, deg.
+    distance, distance_err : array of float
+        Heliocentric distance and uncertainty, kpc; NaN where the star has none.
+    parallax, parallax_err : array of float
+        Parallax and uncertainty, mas; NaN where the star has none.
+    pmra, pmra_err, pmdec, pmdec_err : array of float
+        Proper motions (pmra includes cos(dec)) and uncertainties, mas/yr.
+    vlos, vlos_err : array of float
+        Line-of-sight velocity and uncertainty, km/s.
+    corr_pmra_pmdec, corr_parallax_pmra, corr_parallax_pmdec : array of float
+        Correlation coefficients (0 where the file has no such column).
+    rows : array of int
+        The 1-based data row of each star in the source.
+    source : str
+        The file (or label) read.
+    problems : tuple of Problem
+        Problems found; with ``drop_invalid=True`` the rows they name were dropped.
+    dropped_rows : tuple of int
+        1-based data rows dropped (empty unless ``drop_invalid=True``).
+    units : dict
+        The unit each column was read in (before conversion), as strings.
+    meta : dict
+        The file's metadata (astropy ``Table.meta``).
+    extra : dict of str to array
+        The file's other columns (kept rows only), unvalidated, as numpy arrays (masked
+        arrays where the file masks values).
+    """
+
+    ids: np.ndarray
+    ra: np.ndarray
+    dec: np.ndarray
+    distance: np.ndarray
+    distance_err: np.ndarray
+    parallax: np.ndarray
+    parallax_err: np.ndarray
+    pmra: np.ndarray
+    pmra_err: np.ndarray
+    pmdec: np.ndarray
+    pmdec_err: np.ndarray
+    vlos: np.ndarray
+    vlos_err: np.ndarray
+    corr_pmra_pmdec: np.ndarray
+    corr_parallax_pmra: np.ndarray
+    corr_parallax_pmdec: np.ndarray
+    rows: np.ndarray
+    source: str
+    problems: tuple = ()
+    dropped_rows: tuple = ()
+    units: dict = field(default_factory=dict)
+    meta: dict = field(default_factory=dict)
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def n(self) -> int:
+        """Number of stars."""
+        return int(self.ids.shape[0])
+
+    @property
+    def has_distance(self) -> np.ndarray:
+        """Boolean array (n,): the star has a distance and its uncertainty."""
+        return np.isfinite(self.distance) & np.isfinite(self.distance_err)
+
+    @property
+    def has_parallax(self) -> np.ndarray:
+        """Boolean array (n,): the star has a parallax and its uncertainty."""
+        return np.isfinite(self.parallax) & np.isfinite(self.parallax_err)
+
+    def covariance(self) -> np.ndarray:
+        """Measurement covariance of (parallax, pmra, pmdec), shape (n, 3, 3), mas and mas/yr.
+
+        Rows and columns of a star without a parallax are NaN in the parallax entries.
+        """
+        sig = np.stack([self.parallax_err, self.pmra_err, self.pmdec_err], axis=-1)
+        corr = np.broadcast_to(np.eye(3), (self.n, 3, 3)).copy()
+        corr[:, 0, 1] = corr[:, 1, 0] = self.corr_parallax_pmra
+        corr[:, 0, 2] = corr[:, 2, 0] = self.corr_parallax_pmdec
+        corr[:, 1, 2] = corr[:, 2, 1] = self.corr_pmra_pmdec
+        return corr * sig[:, :, None] * sig[:, None, :]
+
+
+def _format_of(path: str) -> str | None:
+    low = path.lower()
+    for ending in sorted(FORMATS, key=len, reverse=True):
+        if low.endswith(ending):
+            return FORMATS[ending]
+    return None
+
+
+def read_catalog(
+    path,
+    *,
+    columns=None,
+    units=None,
+    drop_invalid: bool = False,
+    require_units: bool | None = None,
+) -> Catalog:
+    """Read and validate an observed catalog.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        ECSV, FITS, VOTable or CSV file; the format comes from the extension (:data:`FORMATS`).
+    columns : dict or str, optional
+        ``{our_name: file_column}`` for columns named otherwise in the file, or the string form
+        ``"ra=RA_deg,dec=DE_deg"`` (:func:`parse_columns`).
+    units : dict or str, optional
+        Units of columns that have none in the file, ``{"distance": "pc"}`` or
+        ``"distance=pc,pmra=mas/yr"`` (:func:`parse_units`). Otherwise the defaults of
+        :data:`COLUMNS` apply to unit-less CSV columns.
+    drop_invalid : bool
+        False (default): any problem refuses the file. True: rows with problems are dropped and
+        the problems returned in :attr:`Catalog.problems`.
+    require_units : bool, optional
+        Whether a quantity column needs a unit in the file or in ``units``. Default: True for
+        ECSV, FITS and VOTable, False for CSV.
+
+    Returns
+    -------
+    Catalog
+
+    Raises
+    ------
+    CatalogError
+        Listing every problem found, or (one line) when the file cannot be read at all.
+    ValueError
+        For a malformed ``columns`` or ``units`` option.
+    """
+    columns = parse_columns(columns)
+    units = parse_units(units)
+    name = os.fspath(path) if isinstance(path, (str, os.PathLike)) else None
+    if name is None:
+        raise ValueError(f"path: expected a file name, got {type(path).__name__}")
+    fmt = _format_of(name)
+    if fmt is None:
+        raise _file_error(name, "unknown file type",
+                          "a name ending in " + ", ".join(sorted(FORMATS)))
+    if not os.path.isfile(name):
+        raise _file_error(name, "no such file", "an existing catalog file")
+    if os.path.getsize(name) == 0:
+        raise _file_error(name, "empty file", f"a table ({fmt})")
+    table = _read_table(name, fmt)
+    if require_units is None:
+        require_units = fmt in _UNIT_FORMATS
+    return catalog_from_table(table, columns=columns, units=units, drop_invalid=drop_invalid,
+                              require_units=require_units, source=name)
+
+
+def _read_table(name: str, fmt: str):
+    from astropy.table import Table
+
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            if fmt == "ascii.csv":
+                # Read the bytes ourselves so that a non-UTF-8 file fails here with a clear message.
+                with open(name, "rb") as fh:
+                    text = fh.read().decode("utf-8")
+                table = Table.read(text, format=fmt)
+            else:
+                table = Table.read(name, format=fmt)
+    except UnicodeDecodeError as exc:
+        raise _file_error(name, f"not UTF-8 text (byte {exc.start})", "a UTF-8 CSV table") from None
+    except Exception as exc:  # noqa: BLE001 - astropy's readers raise many types; none may leak
+        raise _file_error(name, f"cannot be read ({_one_line(exc)})", f"a valid {fmt} table") from None
+    if caught:
+        table.meta = dict(table.meta)
+        table.meta.setdefault("swerve_read_warnings", [str(w.message)[:200] for w in caught])
+    return table
+
+
+def catalog_from_table(
+    table,
+    *,
+    columns=None,
+    units=None,
+    drop_invalid: bool = False,
+    require_units: bool = False,
+    source: str = "<table>",
+) -> Catalog:
+    """Validate an in-memory astropy Table and make a :class:`Catalog`.
+
+    Parameters are those of :func:`read_catalog`; ``source`` labels the table in messages.
+    Quantity columns (astropy ``QTable``) and columns with a ``unit`` attribute are converted.
+    """
+    columns = parse_columns(columns)
+    units = parse_units(units)
+    try:
+        names = list(table.colnames)
+        nrows = len(table)
+    except Exception as exc:  # noqa: BLE001 - not a table; report instead of a traceback
+        raise _file_error(source, f"not a table ({_one_line(exc)})", "an astropy Table") from None
+    if not names:
+        raise _file_error(source, "no columns", "a table with the columns " + ", ".join(
+            n for n, s in COLUMNS.items() if s.required))
+    if nrows == 0:
+        raise _file_error(source, "no data rows", "at least one star")
+    v = _Validator(table, source, columns, units, require_units)
+    return v.run(drop_invalid)
+
+
+class _Validator:
+    """Collects every problem of a table; builds the Catalog."""
+
+    def __init__(self, table, source, columns, units, require_units):
+        self.table = table
+        self.source = source
+        self.columns = columns
+        self.units = units
+        self.require_units = require_units
+        self.n = len(table)
+        self.col_problems: list[Problem] = []
+        self.row_problems: list[Problem] = []
+        self.ids: list[str | None] = [None] * self.n
+        self.values: dict[str, np.ndarray] = {}
+        self.missing: dict[str, np.ndarray] = {}  # masked / NaN / empty per row
+        self.bad: dict[str, np.ndarray] = {}  # unreadable or infinite per row (already reported)
+        self.unit_used: dict[str, str] = {}
+        self.pending: dict[str, list] = {}  # missing-value problems, possibly waived
+
+    # helpers ---------------------------------------------------------------------------------
+    def file_name(self, ours):
+        return self.columns.get(ours, ours)
+
+    def present(self, ours):
+        return self.file_name(ours) in self.table.colnames
+
+    def col_problem(self, ours, value, expected, what=""):
+        self.col_problems.append(Problem(self.source, None, None, ours, value, expected, what,
+                                         self.file_name(ours)))
+
+    def row_problem(self, i, ours, value, expected, what=""):
+        self.row_problems.append(Problem(self.source, i + 1, self.ids[i], ours, value, expected,
+                                         what, self.file_name(ours)))
+
+    # reading columns -------------------------------------------------------------------------
+    def read_ids(self):
+        if not self.present("id"):
+            self.col_problem("id", None, "a column of star identifiers", what="missing column")
+            return
+        col = self.table[self.file_name("id")]
+        mask = np.ma.getmaskarray(col)
+        data = np.ma.getdata(col)
+        if data.ndim != 1:
+            self.col_problem("id", None, "one identifier per row", what=f"column of shape {data.shape}")
+            return
+        idbad = []
+        for i in range(self.n):
+            x = data[i]
+            if mask[i] or x is None:
+                idbad.append((i, None))
+                continue
+            if isinstance(x, (bytes, np.bytes_)):
+                try:
+                    x = bytes(x).decode("utf-8")
+                except UnicodeDecodeError:
+                    idbad.append((i, x))
+                    continue
+            if isinstance(x, (float, np.floating)):
+                if not math.isfinite(x):
+                    idbad.append((i, float(x)))
+                    continue
+                s = str(int(x)) if float(x).is_integer() else repr(float(x))
+            elif isinstance(x, (bool, np.bool_)):
+                idbad.append((i, x))
+                continue
+            else:
+                s = str(x).strip()
+            if not s:
+                idbad.append((i, None))
+                continue
+            self.ids[i] = s
+        for i, x in idbad:
+            self.row_problem(i, "id", x, "a star identifier (string or integer)")
+        first: dict[str, int] = {}
+        for i, s in enumerate(self.ids):
+            if s is None:
+                continue
+            if s in first:
+                self.row_problem(i, "id", s, f"a unique id (also in row {first[s] + 1})")
+            else:
+                first[s] = i
+
+    def unit_for(self, ours, col):
+        """The unit a column's values are in, or None after reporting a problem."""
+        spec = COLUMNS[ours]
+        target = _PHYSICAL[spec.physical_type]
+        file_unit = getattr(col, "unit", None)
+        base = _ERR_OF.get(ours)
+        if file_unit is None and base is not None and self.present(base):
+            file_unit = getattr(self.table[self.file_name(base)], "unit", None)
+        if file_unit is not None:
+            if isinstance(file_unit, u.UnrecognizedUnit):
+                self.col_problem(ours, str(file_unit), f"a {spec.physical_type} unit like {spec.unit!r}",
+                                 what=f"unit {str(file_unit)!r} not understood")
+                return None
+            if not file_unit.is_equivalent(target):
+                self.col_problem(ours, str(file_unit), f"a {spec.physical_type} unit like {spec.unit!r}",
+                                 what=f"unit {str(file_unit)!r}")
+                return None
+            given = self.units.get(ours) or (self.units.get(base) if base else None)
+            if given is not None and not _same_unit(given, file_unit):
+                self.col_problem(ours, str(file_unit), f"the unit given in units= ({given})",
+                                 what=f"file unit {str(file_unit)!r} disagrees with units=")
+                return None
+            return file_unit
+        given = self.units.get(ours) or (self.units.get(base) if base else None)
+        if given is not None:
+            return given
+        if spec.physical_type == "dimensionless":
+            return u.dimensionless_unscaled
+        if self.require_units:
+            self.col_problem(ours, None, f"a {spec.physical_type} unit like {spec.unit!r} in the "
+                             "file or in units=", what="no unit")
+            return None
+        return u.Unit(spec.unit)
+
+    def read_quantity(self, ours):
+        spec = COLUMNS[ours]
+        col = self.table[self.file_name(ours)]
+        unit = self.unit_for(ours, col)
+        mask = np.ma.getmaskarray(col)
+        data = np.ma.getdata(col)
+        if data.ndim != 1:
+            self.col_problem(ours, None, "one number per row", what=f"column of shape {data.shape}")
+            return
+        if unit is None:
+            return
+        kind = data.dtype.kind
+        vals = np.full(self.n, np.nan)
+        bad = np.zeros(self.n, dtype=bool)
+        if kind in "fiu":
+            with np.errstate(all="ignore"):
+                vals = data.astype(float)
+        elif kind in "USO":
+            for i in range(self.n):
+                if mask[i]:
+                    continue
+                x = data[i]
+                try:
+                    if isinstance(x, (bytes, np.bytes_)):
+                        x = bytes(x).decode("utf-8")
+                    if isinstance(x, (bool, np.bool_)):
+                        raise TypeError
+                    if isinstance(x, str) and not x.strip():
+                        continue  # an empty field: missing
+                    vals[i] = float(x)
+                except (TypeError, ValueError, OverflowError, UnicodeDecodeError):
+                    bad[i] = True
+                    self.row_problem(i, ours, x, "a number")
+        else:
+            self.col_problem(ours, None, "numbers", what=f"column of type {data.dtype}")
+            return
+        vals = np.where(mask, np.nan, vals)
+        missing = np.isnan(vals) & ~bad
+        inf = np.isinf(vals)
+        for i in np.flatnonzero(inf):
+            self.row_problem(i, ours, vals[i], "a finite number")
+        # Missing values are reported later (a row may leave its distance or parallax pair empty).
+        self.pending[ours] = [i for i in np.flatnonzero(missing)]
+        self.missing[ours] = missing
+        self.bad[ours] = bad | inf
+        factor = (1.0 * unit).to_value(u.Unit(spec.unit))  # to the documented unit
+        with np.errstate(all="ignore"):
+            self.values[ours] = vals * factor
+        self.unit_used[ours] = str(unit)
+
+    # checks ----------------------------------------------------------------------------------
+    def run(self, drop_invalid) -> Catalog:
+        self.read_ids()
+        for ours in ("ra", "dec", "pmra", "pmra_err", "pmdec", "pmdec_err", "vlos", "vlos_err"):
+            if not self.present(ours):
+                self.col_problem(ours, None, f"a column of {COLUMNS[ours].description} "
+                                 f"({COLUMNS[ours].unit})", what="missing column")
+        has_d = self.present("distance") or self.present("distance_err")
+        has_p = self.present("parallax") or self.present("parallax_err")
+        if not has_d and not has_p:
+            self.col_problem("distance", None, "columns 'distance' and 'distance_err' (kpc) or "
+                             "'parallax' and 'parallax_err' (mas)", what="missing column")
+        for a, b in (("distance", "distance_err"), ("parallax", "parallax_err")):
+            for x, y in ((a, b), (b, a)):
+                if self.present(x) and not self.present(y):
+                    self.col_problem(y, None, f"a column {y!r} beside {x!r}", what="missing column")
+        for ours in _QUANTITIES:
+            if ours.startswith("corr_parallax") and not has_p:
+                continue  # meaningless without a parallax; ignored like any extra column
+            if self.present(ours):
+                self.read_quantity(ours)
+        self.check_missing()
+        self.check_values()
+        self.check_covariance()
+        return self.build(drop_invalid)
+
+    def pair_complete(self, a, b):
+        if a not in self.values or b not in self.values:
+            return np.zeros(self.n, dtype=bool)
+        return ~(self.missing[a] | self.bad[a] | self.missing[b] | self.bad[b])
+
+    def pair_empty(self, a, b):
+        if a not in self.values or b not in self.values:
+            return np.ones(self.n, dtype=bool)
+        return self.missing[a] & self.missing[b]
+
+    def check_missing(self):
+        d_ok = self.pair_complete("distance", "distance_err")
+        p_ok = self.pair_complete("parallax", "parallax_err")
+        waive = {
+            "distance": p_ok & self.pair_empty("distance", "distance_err"),
+            "distance_err": p_ok & self.pair_empty("distance", "distance_err"),
+            "parallax": d_ok & self.pair_empty("parallax", "parallax_err"),
+            "parallax_err": d_ok & self.pair_empty("parallax", "parallax_err"),
+        }
+        no_plx = ~p_ok
+        waive["corr_parallax_pmra"] = no_plx
+        waive["corr_parallax_pmdec"] = no_plx
+        for ours, rows in self.pending.items():
+            w = waive.get(ours)
+            for i in rows:
+                if w is not None and w[i]:
+                    continue
+                self.row_problem(i, ours, None, "a number", what="missing (empty, masked or NaN)")
+
+    def usable(self, ours):
+        v = self.values[ours]
+        return np.isfinite(v)
+
+    def check_values(self):
+        V = self.values
+        if "ra" in V:
+            for i in np.flatnonzero(self.usable("ra") & ~((V["ra"] >= 0) & (V["ra"] < 360))):
+                self.row_problem(i, "ra", V["ra"][i], "a right ascension in [0, 360) deg")
+        if "dec" in V:
+            for i in np.flatnonzero(self.usable("dec") & ~((V["dec"] >= -90) & (V["dec"] <= 90))):
+                self.row_problem(i, "dec", V["dec"][i], "a declination in [-90, 90] deg")
+        for err in _ERR_OF:
+            if err in V:
+                for i in np.flatnonzero(self.usable(err) & ~(V[err] > 0)):
+                    self.row_problem(i, err, V[err][i], "a positive uncertainty")
+        if "distance" in V:
+            for i in np.flatnonzero(self.usable("distance") & ~(V["distance"] > 0)):
+                self.row_problem(i, "distance", V["distance"][i], "a positive distance")
+        if "parallax" in V:
+            d_ok = self.pair_complete("distance", "distance_err")
+            if "distance" in V:
+                d_ok &= V["distance"] > 0
+            for i in np.flatnonzero(self.usable("parallax") & ~(V["parallax"] > 0) & ~d_ok):
+                self.row_problem(i, "parallax", V["parallax"][i],
+                                 "a positive parallax (or a distance for this star)")
+        for c in _CORRS:
+            if c in V:
+                for i in np.flatnonzero(self.usable(c) & ~(np.abs(V[c]) <= 1)):
+                    self.row_problem(i, c, V[c][i], "a correlation coefficient in [-1, 1]")
+
+    def check_covariance(self):
+        V = self.values
+        present = [c for c in _CORRS if c in V]
+        if not present:
+            return
+        rho = {c: np.where(np.isfinite(V[c]), V[c], 0.0) if c in V else np.zeros(self.n) for c in _CORRS}
+        in_range = np.ones(self.n, dtype=bool)
+        for c in present:
+            in_range &= ~(np.isfinite(V[c]) & (np.abs(V[c]) > 1))
+        p_ok = self.pair_complete("parallax", "parallax_err")
+        R = np.broadcast_to(np.eye(3), (self.n, 3, 3)).copy()
+        R[:, 0, 1] = R[:, 1, 0] = np.where(p_ok, rho["corr_parallax_pmra"], 0.0)
+        R[:, 0, 2] = R[:, 2, 0] = np.where(p_ok, rho["corr_parallax_pmdec"], 0.0)
+        R[:, 1, 2] = R[:, 2, 1] = rho["corr_pmra_pmdec"]
+        with np.errstate(all="ignore"):
+            lam = np.linalg.eigvalsh(R)[:, 0]
+        label = "/".join(present)
+        for i in np.flatnonzero(in_range & ~(lam > 1e-10)):
+            self.row_problem(i, label, float(lam[i]),
+                             "correlations that make a positive-definite covariance of "
+                             "(parallax, pmra, pmdec)",
+                             what=f"smallest correlation-matrix eigenvalue {lam[i]:.3g}")
+
+    # result ----------------------------------------------------------------------------------
+    def build(self, drop_invalid) -> Catalog:
+        problems = self.col_problems + sorted(self.row_problems, key=lambda p: (p.row, _col_order(p.column)))
+        if self.col_problems or (problems and not drop_invalid):
+            raise CatalogError(problems)
+        bad_rows = sorted({int(p.row) for p in self.row_problems})
+        keep = np.ones(self.n, dtype=bool)
+        keep[[r - 1 for r in bad_rows]] = False
+        if not keep.any():
+            raise CatalogError(problems + [Problem(self.source, None, None, None, None,
+                                                   "at least one valid star",
+                                                   what="every row has a problem")])
+        if problems:
+            for p in problems:
+                logger.warning("dropped: %s", p)
+
+        def arr(name, default=np.nan):
+            a = self.values.get(name)
+            if a is None:
+                a = np.full(self.n, default)
+            a = a[keep].astype(float)
+            return a
+
+        out = {name: arr(name) for name in _QUANTITIES if name not in _CORRS}
+        for c in _CORRS:
+            a = arr(c, 0.0)
+            out[c] = np.where(np.isfinite(a), a, 0.0)  # only where the row has no parallax
+        # A pair the row left empty stays NaN; a non-positive parallax beside a distance is kept.
+        meta = dict(getattr(self.table, "meta", {}) or {})
+        used = {self.file_name(c) for c in COLUMNS}
+        extra = {}
+        for name in self.table.colnames:
+            if name not in used:
+                col = self.table[name]
+                data = np.ma.asarray(col) if np.ma.is_masked(col) else np.asarray(col)
+                extra[name] = data[keep]
+        return Catalog(
+            ids=np.array([s for s, k in zip(self.ids, keep) if k], dtype=object).astype(str),
+            rows=np.flatnonzero(keep) + 1,
+            source=self.source,
+            problems=tuple(problems),
+            dropped_rows=tuple(bad_rows),
+            units=dict(self.unit_used),
+            meta=meta,
+            extra=extra,
+            **out,
+        )
+
+
+def _same_unit(a, b) -> bool:
+    try:
+        return math.isclose((1.0 * a).to_value(b), 1.0, rel_tol=1e-12)
+    except u.UnitConversionError:
+        return False
+
+
+def _col_order(column):
+    names = list(COLUMNS)
+    return names.index(column) if column in names else len(names)
+
+
+# --------------------------------------------------------------------------------------------
+# error samples
+
+
+@dataclass
+class ErrorSamples:
+    """K samples of each star's true observables, transformed to Galactocentric coordinates.
+
+    Attributes
+    ----------
+    ids : array of str, shape (n,)
+    position : array of shape (n, k, 3)
+        Galactocentric position, kpc.
+    velocity : array of shape (n, k, 3)
+        Galactocentric velocity, km/s.
+    log_weight : array of shape (n, k)
+        ``log_jacobian + log_prior``: the log importance weight of each sample, up to an
+        additive constant per star (see :func:`draw_samples`).
+    log_jacobian : array of shape (n, k)
+        ``2 log(kappa d)``, the log of |det d(v)/d(pmra, pmdec, vlos)| at the sample's distance.
+    log_prior : array of shape (n, k)
+        The distance-prior importance weight (0 for stars sampled from a distance Gaussian).
+    distance : array of shape (n, k)
+        Sampled heliocentric distance, kpc.
+    pmra, pmdec : arrays of shape (n, k)
+        Sampled proper motions, mas/yr.
+    vlos : array of shape (n, k)
+        Sampled line-of-sight velocity, km/s.
+    ra, dec : arrays of shape (n,)
+        The stars' sky positions, deg (not sampled).
+    from_parallax : array of bool, shape (n,)
+        Whether the star's distance came from its parallax.
+    distance_prior : str
+    settings : dict
+        The prior's settings (length scale, maximum distance) and the solar parameters used
+        (:meth:`swerve.frames.SolarParameters.to_dict`).
+    """
+
+    ids: np.ndarray
+    position: np.ndarray
+    velocity: np.ndarray
+    log_weight: np.ndarray
+    log_jacobian: np.ndarray
+    log_prior: np.ndarray
+    distance: np.ndarray
+    pmra: np.ndarray
+    pmdec: np.ndarray
+    vlos: np.ndarray
+    ra: np.ndarray
+    dec: np.ndarray
+    from_parallax: np.ndarray
+    distance_prior: str
+    settings: dict
+
+    @property
+    def n(self) -> int:
+        """Number of stars."""
+        return int(self.position.shape[0])
+
+    @property
+    def k(self) -> int:
+        """Samples per star."""
+        return int(self.position.shape[1])
+
+    def weights(self) -> np.ndarray:
+        """Normalised weights, shape (n, k): each star's weights sum to 1."""
+        lw = self.log_weight - self.log_weight.max(axis=1, keepdims=True)
+        w = np.exp(lw)
+        return w / w.sum(axis=1, keepdims=True)
+
+    def effective_sample_size(self) -> np.ndarray:
+        """Kish effective sample size per star, ``1 / sum(w**2)`` of the normalised weights, (n,)."""
+        w = self.weights()
+        return 1.0 / np.sum(w * w, axis=1)
+
+
+#: "exponential-length" samples distances below this many length scales (prior mass beyond:
+#: about 1e-35 of the total).
+_EXP_CUTOFF = 100.0
+
+
+def _truncnorm(mean, sd, low, k, rng):
+    """(n, k) draws of N(mean, sd) truncated to > low, by inverse CDF (exact, no rejection).
+
+    With a = (low - mean) / sd, z = -Phi^-1(U Phi(-a)) for U uniform on (0, 1) is N(0, 1)
+    truncated to z > a; computed in log space (``log_ndtr``, ``ndtri_exp``), so it stays exact
+    however far into the tail ``a`` lies.
+    """
+    from scipy.special import log_ndtr, ndtri_exp
+
+    a = (low - mean) / sd
+    # uniform on the open interval (0, 1): 53 random bits, offset by half a step
+    uni = (rng.integers(0, 2**53, size=(mean.shape[0], k), dtype=np.int64) + 0.5) / 2.0**53
+    z = -ndtri_exp(np.log(uni) + log_ndtr(-a)[:, None])
+    z = np.maximum(z, a[:, None])  # round-off at the boundary
+    out = mean[:, None] + sd[:, None] * z
+    return np.maximum(out, np.nextafter(low, np.inf)[:, None])
+
+
+def draw_samples(
+    catalog: Catalog,
+    k: int,
+    rng: np.random.Generator,
+    distance_prior: str = "none",
+    solar=None,
+    *,
+    distance_source: str = "auto",
+    length_scale: float = 10.0,
+    max_distance: float = 300.0,
+    max_fractional_parallax_error: float = 0.2,
+) -> ErrorSamples:
+    """Draw K samples per star from its measurement errors and move them to Galactocentric frame.
+
+    Parameters
+    ----------
+    catalog : Catalog
+    k : int
+        Samples per star (>= 1).
+    rng : numpy.random.Generator
+        The only source of randomness.
+    distance_prior : {"none", "uniform-volume", "exponential-length"}
+        Prior on the distance of stars whose distance comes from the parallax:
+
+        - ``"none"``: distance = 1 / parallax (a prior flat in parallax); refused for a star
+          with ``parallax_err / parallax > max_fractional_parallax_error``.
+        - ``"uniform-volume"``: p(d) proportional to d^2 for 0 < d <= ``max_distance``.
+        - ``"exponential-length"``: p(d) proportional to d^2 exp(-d / L), L = ``length_scale``
+          (the exponentially decreasing space density of Bailer-Jones 2015, PASP 127, 994),
+          cut at d = 100 L (where the prior's remaining mass is about 1e-35).
+    solar : None, str, dict or SolarParameters
+        Solar parameters (default "v4.0"), resolved by :func:`swerve.frames.resolve_solar`.
+    distance_source : {"auto", "distance", "parallax"}
+        "auto": a star's distance Gaussian where it has one, else its parallax.
+    length_scale : float or Quantity ['length']
+        L of "exponential-length", kpc. 10 kpc is a swerve choice for halo stars, not a
+        published value: set it for your sample.
+    max_distance : float or Quantity ['length']
+        Upper distance limit of "uniform-volume", kpc.
+    max_fractional_parallax_error : float
+        The limit of ``parallax_err / parallax`` under ``"none"``.
+
+    Returns
+    -------
+    ErrorSamples
+
+    Notes
+    -----
+    **What is sampled.** The proposal is the measurement distribution itself, read as a
+    distribution of the true observables: (parallax, pmra, pmdec) from the trivariate normal
+    with the catalog's uncertainties and correlations, vlos independent normal. For a parallax
+    star the parallax is drawn from its normal *truncated* to parallax > 0 (> 1/max_distance
+    for "uniform-volume", > 1/(100 L) for "exponential-length"), exactly by inverse CDF, and
+    the proper motions from their conditional normal given that parallax, so the correlations
+    hold. A distance star's distance is drawn
+    from N(distance, distance_err) truncated to d > 0 and its proper motions from the marginal
+    (pmra, pmdec) normal (the parallax, if any, is not used).
+
+    **What the weights mean.** Write the star's data D, its true distance d, proper motions mu
+    and line-of-sight velocity w, and p(v | x, theta) the model's density of the Galactocentric
+    velocity at position x. The per-star likelihood is
+
+        L(theta) = integral p(v(d, mu, w) | x(d), theta) J(d) p(D | d, mu, w) pi(d) dd dmu dw,
+
+    where J(d) = |det dv/d(mu, w)| = (kappa d)^2 (kappa = 4.74047 km/s per kpc mas/yr): the map
+    from (pmra, pmdec, vlos) to v at fixed position is linear (a rotation of
+    (kappa d pmra, kappa d pmdec, vlos) plus the solar velocity), so the density of the
+    *observables* is the density of v times J(d). J is constant for one star only at fixed
+    distance; since the distance is sampled, it varies from sample to sample and is kept in
+    ``log_jacobian``. With samples from the proposal q, proportional to p(D | ...) on the
+    truncated region, L(theta) is proportional (by a theta-independent factor per star) to the
+    weighted mean sum_k w_k p(v_k | x_k, theta) / sum_k w_k, with
+
+    - parallax stars: log w = log J(d) + log[pi(d) d^2]; d^2 = |dd/dparallax|^-1 changes the
+      prior on d into one on parallax. Under "none" pi(d) d^2 = 1 (flat in parallax).
+    - distance stars: log w = log J(d) (a flat prior on d; the catalog distance is taken to be
+      the measurement).
+
+    ``log_prior`` holds log[pi(d) d^2] and ``log_jacobian`` log J(d). A density in spherical
+    components (v_r, v_theta, v_phi), folded or not, needs no further factor (an orthogonal map
+    at fixed position). A likelihood that uses the density of fewer than three components must
+    not use ``log_jacobian`` as it stands. The same weights serve a likelihood that integrates
+    the velocity errors analytically at each distance sample: with v = A(d) eta + b,
+    integral p(v) J L(eta) d eta = |det A| N(A eta_obs + b; model mean, model cov + A C A^T),
+    and |det A| = J(d).
+
+    Solar parameters are fixed, not sampled: they are shared by all stars, so drawing them per
+    star and averaging per star would treat them as independent for each star, which is wrong.
+    Vary them as global nuisance parameters of the fit, or rerun with other sets.
+    Weights with poor parallaxes under the two volume priors can be very uneven: check
+    :meth:`ErrorSamples.effective_sample_size`.
+
+    References
+    ----------
+    Hogg, Myers & Bovy 2010, ApJ 725, 2166 (importance-sampling marginalisation over per-object
+    samples); Bailer-Jones 2015, PASP 127, 994 (distance priors).
+    """
+    from .frames import PM_KMS_PER_KPC_MASYR, helio_to_galacto, resolve_solar
+    from .units import to_internal
+
+    if not isinstance(catalog, Catalog):
+        raise ValueError(f"catalog: expected a Catalog, got {type(catalog).__name__}")
+    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
+        raise ValueError(f"k: expected a positive integer number of samples, got {k!r}")
+    k = int(k)
+    if not isinstance(rng, np.random.Generator):
+        raise ValueError(f"rng: expected a numpy.random.Generator, got {type(rng).__name__}")
+    if distance_prior not in DISTANCE_PRIORS:
+        raise ValueError(f"distance_prior: expected one of {', '.join(DISTANCE_PRIORS)}, "
+                         f"got {distance_prior!r}")
+    if distance_source not in ("auto", "distance", "parallax"):
+        raise ValueError(f"distance_source: expected 'auto', 'distance' or 'parallax', "
+                         f"got {distance_source!r}")
+    checked = {}
+    for name, value, kind in (("length_scale", length_scale, "length"),
+                              ("max_distance", max_distance, "length"),
+                              ("max_fractional_parallax_error", max_fractional_parallax_error, None)):
+        if kind is not None and isinstance(value, u.Quantity):
+            value = to_internal(value, kind, name)
+        if not (isinstance(value, (int, float, np.number)) and not isinstance(value, bool)
+                and math.isfinite(value) and value > 0):
+            raise ValueError(f"{name}: expected a positive number, got {value!r}")
+        checked[name] = float(value)
+    length_scale, max_distance = checked["length_scale"], checked["max_distance"]
+    max_fractional_parallax_error = checked["max_fractional_parallax_error"]
+    solar = resolve_solar(solar)
+    n = catalog.n
+
+    has_d, has_p = catalog.has_distance, catalog.has_parallax
+    if distance_source == "distance":
+        use_p = np.zeros(n, dtype=bool)
+        lacking = ~has_d
+    elif distance_source == "parallax":
+        use_p = np.ones(n, dtype=bool)
+        lacking = ~has_p
+    else:
+        use_p = ~has_d
+        lacking = ~(has_d | has_p)
+    if lacking.any():
+        i = int(np.flatnonzero(lacking)[0])
+        what = "distance" if distance_source == "distance" else "parallax"
+        raise ValueError(f"{catalog.source}: star {str(catalog.ids[i])!r} (row {int(catalog.rows[i])}) "
+                         f"has no {what} to sample (distance_source={distance_source!r})")
+    if distance_prior == "none" and use_p.any():
+        with np.errstate(all="ignore"):
+            frac = catalog.parallax_err / catalog.parallax
+        poor = use_p & ~((catalog.parallax > 0) & (frac <= max_fractional_parallax_error))
+        if poor.any():
+            i = int(np.flatnonzero(poor)[0])
+            if catalog.parallax[i] > 0:
+                why = f"fractional error {frac[i]:.3g} > {max_fractional_parallax_error}"
+            else:
+                why = "not positive"
+            raise ValueError(
+                f"{catalog.source}: star {str(catalog.ids[i])!r} (row {int(catalog.rows[i])}) has "
+                f"parallax {catalog.parallax[i]:.4g} +- {catalog.parallax_err[i]:.4g} mas ({why}); "
+                f"distance = 1/parallax is biased there: use distance_prior='exponential-length' "
+                f"or 'uniform-volume' ({int(poor.sum())} such star(s))"
+            )
+
+    dist = np.empty((n, k))
+    pm = np.empty((n, k, 2))
+    log_prior = np.zeros((n, k))
+    mu = np.stack([catalog.pmra, catalog.pmdec], axis=-1)
+    s1, s2 = catalog.pmra_err, catalog.pmdec_err
+    rho = catalog.corr_pmra_pmdec
+    cov_mm = np.empty((n, 2, 2))
+    cov_mm[:, 0, 0], cov_mm[:, 1, 1] = s1**2, s2**2
+    cov_mm[:, 0, 1] = cov_mm[:, 1, 0] = rho * s1 * s2
+
+    ds = ~use_p
+    if ds.any():
+        idx = np.flatnonzero(ds)
+        dist[idx] = _truncnorm(catalog.distance[idx], catalog.distance_err[idx], np.zeros(idx.size), k, rng)
+        L = np.linalg.cholesky(cov_mm[idx])
+        z = rng.standard_normal((idx.size, k, 2))
+        pm[idx] = mu[idx, None, :] + np.einsum("nij,nkj->nki", L, z)
+    if use_p.any():
+        idx = np.flatnonzero(use_p)
+        plx, sp = catalog.parallax[idx], catalog.parallax_err[idx]
+        if distance_prior == "uniform-volume":
+            low_value = 1.0 / max_distance
+        elif distance_prior == "exponential-length":
+            low_value = 1.0 / (_EXP_CUTOFF * length_scale)
+        else:
+            low_value = np.finfo(float).tiny  # keeps 1/parallax finite
+        low = np.full(idx.size, low_value)
+        w = _truncnorm(plx, sp, low, k, rng)
+        c_pw = np.stack([catalog.corr_parallax_pmra[idx] * sp * s1[idx],
+                         catalog.corr_parallax_pmdec[idx] * sp * s2[idx]], axis=-1)  # (m, 2)
+        gain = c_pw / (sp**2)[:, None]
+        cond_mean = mu[idx, None, :] + gain[:, None, :] * (w - plx[:, None])[:, :, None]
+        cond_cov = cov_mm[idx] - c_pw[:, :, None] * c_pw[:, None, :] / (sp**2)[:, None, None]
+        L = np.linalg.cholesky(cond_cov)
+        z = rng.standard_normal((idx.size, k, 2))
+        pm[idx] = cond_mean + np.einsum("nij,nkj->nki", L, z)
+        d = 1.0 / w
+        dist[idx] = d
+        if distance_prior == "none":
+            log_prior[idx] = 0.0
+        elif distance_prior == "uniform-volume":
+            log_prior[idx] = 4.0 * np.log(d)  # pi(d) d^2 = d^4 on d <= max_distance (truncation)
+        else:
+            log_prior[idx] = 4.0 * np.log(d) - d / length_scale
+    vlos = catalog.vlos[:, None] + catalog.vlos_err[:, None] * rng.standard_normal((n, k))
+    log_jac = 2.0 * np.log(PM_KMS_PER_KPC_MASYR * dist)
+
+    ra = np.repeat(catalog.ra, k)
+    dec = np.repeat(catalog.dec, k)
+    pos, vel = helio_to_galacto(ra, dec, dist.ravel(), pm[..., 0].ravel(), pm[..., 1].ravel(),
+                                vlos.ravel(), solar=solar)
+    settings = {"distance_source": distance_source, "solar": solar.to_dict()}
+    if distance_prior == "exponential-length":
+        settings["length_scale_kpc"] = float(length_scale)
+    if distance_prior == "uniform-volume":
+        settings["max_distance_kpc"] = float(max_distance)
+    if distance_prior == "none":
+        settings["max_fractional_parallax_error"] = float(max_fractional_parallax_error)
+    return ErrorSamples(
+        ids=catalog.ids.copy(),
+        position=pos.reshape(n, k, 3),
+        velocity=vel.reshape(n, k, 3),
+        log_weight=log_jac + log_prior,
+        log_jacobian=log_jac,
+        log_prior=log_prior,
+        distance=dist,
+        pmra=pm[..., 0],
+        pmdec=pm[..., 1],
+        vlos=vlos,
+        ra=catalog.ra.copy(),
+        dec=catalog.dec.copy(),
+        from_parallax=use_p,
+        distance_prior=distance_prior,
+        settings=settings,
+    )

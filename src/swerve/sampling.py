@@ -1,0 +1,286 @@
+"""Priors, the posterior, its maximum, and the emcee driver with convergence and resuming.
+
+The sampler loop is emcee's ``EnsembleSampler.sample`` generator underneath; :func:`sample_posterior`
+checks the integrated autocorrelation time every ``check_every`` steps and stops when the chain
+is longer than ``n_tau`` autocorrelation times and τ has changed by less than ``tau_rtol``
+since the last check (emcee docs; Foreman-Mackey et al. 2013, PASP 125, 306), or warns
+(:class:`ConvergenceWarning`) when the step cap is hit first.  Chains go to emcee's HDF5 backend,
+so an interrupted fit resumes from its file.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize
+
+PRIOR_KINDS = ("uniform", "gaussian", "fixed")
+
+
+class ConvergenceWarning(UserWarning):
+    """The chain hit its step cap before the autocorrelation criterion was met."""
+
+
+@dataclass(frozen=True)
+class Prior:
+    """Prior of one parameter: uniform on [low, high], Gaussian (mu, sigma) truncated to the
+    emulator's domain, or fixed at ``value``."""
+
+    name: str
+    kind: str = "uniform"
+    low: float | None = None
+    high: float | None = None
+    mu: float | None = None
+    sigma: float | None = None
+    value: float | None = None
+
+    def __post_init__(self):
+        if self.kind not in PRIOR_KINDS:
+            raise ValueError(f"prior of {self.name}: kind {self.kind!r} is not one of {', '.join(PRIOR_KINDS)}")
+        if self.kind == "gaussian" and not (self.sigma is not None and self.sigma > 0 and self.mu is not None):
+            raise ValueError(f"prior of {self.name}: a gaussian prior needs mu and a positive sigma")
+        if self.kind == "fixed" and self.value is None:
+            raise ValueError(f"prior of {self.name}: a fixed prior needs a value")
+
+    def to_dict(self) -> dict:
+        return {k: v for k, v in self.__dict__.items() if v is not None}
+
+
+def resolve_priors(names, bounds, priors: dict | None = None) -> list[Prior]:
+    """One prior per emulator parameter: uniform over the emulator domain unless ``priors`` says
+    otherwise; a prior that leaves the domain is refused with a message naming the parameter."""
+    priors = dict(priors or {})
+    unknown = set(priors) - set(names)
+    if unknown:
+        import difflib
+
+        key = sorted(unknown)[0]
+        close = difflib.get_close_matches(key, list(names), n=1)
+        hint = f"; did you mean {close[0]!r}?" if close else f"; the emulator's parameters are {list(names)}"
+        raise ValueError(f"prior for unknown parameter {key!r}{hint}")
+    out = []
+    for name, (lo, hi) in zip(names, np.asarray(bounds, dtype=float)):
+        p = priors.get(name)
+        if p is None:
+            p = Prior(name, "uniform", float(lo), float(hi))
+        elif isinstance(p, dict):
+            p = Prior(name=name, **p)
+        dom = f"the emulator's domain [{lo:g}, {hi:g}]"
+        if p.kind == "uniform":
+            low = lo if p.low is None else p.low
+            high = hi if p.high is None else p.high
+            if not (lo <= low < high <= hi):
+                raise ValueError(f"prior of {name}: uniform [{low:g}, {high:g}] leaves {dom}")
+            p = Prior(name, "uniform", float(low), float(high))
+        elif p.kind == "gaussian":
+            if not lo <= p.mu <= hi:
+                raise ValueError(f"prior of {name}: gaussian mean {p.mu:g} lies outside {dom}")
+            p = Prior(name, "gaussian", float(lo), float(hi), float(p.mu), float(p.sigma))
+        else:
+            if not lo <= p.value <= hi:
+                raise ValueError(f"prior of {name}: fixed value {p.value:g} lies outside {dom}")
+        out.append(p)
+    return out
+
+
+class Posterior:
+    """log posterior over the free parameters, vectorised over walkers.
+
+    Parameters
+    ----------
+    loglike : callable (W, d) -> (W,)
+        Log-likelihood over all emulator parameters, in ``names`` order.
+    priors : list of Prior, one per parameter (see :func:`resolve_priors`).
+    """
+
+    def __init__(self, loglike, priors):
+        self.loglike = loglike
+        self.priors = list(priors)
+        self.names = [p.name for p in self.priors]
+        self.free = [i for i, p in enumerate(self.priors) if p.kind != "fixed"]
+        self.free_names = [self.names[i] for i in self.free]
+        self.ndim = len(self.free)
+        if self.ndim == 0:
+            raise ValueError("priors: every parameter is fixed; nothing to fit")
+        self._fixed = np.array([p.value if p.kind == "fixed" else np.nan for p in self.priors])
+        self.low = np.array([self.priors[i].low for i in self.free])
+        self.high = np.array([self.priors[i].high for i in self.free])
+
+    def full(self, x) -> np.ndarray:
+        """Free parameters (W, ndim) -> all emulator parameters (W, d)."""
+        x = np.atleast_2d(x)
+        th = np.broadcast_to(self._fixed, (x.shape[0], len(self.priors))).copy()
+        th[:, self.free] = x
+        return th
+
+    def log_prior(self, x) -> np.ndarray:
+        x = np.atleast_2d(x)
+        lp = np.zeros(x.shape[0])
+        inside = np.all((x >= self.low) & (x <= self.high), axis=1)
+        for j, i in enumerate(self.free):
+            p = self.priors[i]
+            if p.kind == "gaussian":
+                lp += -0.5 * ((x[:, j] - p.mu) / p.sigma) ** 2
+        return np.where(inside, lp, -np.inf)
+
+    def __call__(self, x) -> np.ndarray:
+        x = np.atleast_2d(np.asarray(x, dtype=float))
+        lp = self.log_prior(x)
+        out = np.full(x.shape[0], -np.inf)
+        ok = np.isfinite(lp)
+        if ok.any():
+            ll = np.asarray(self.loglike(self.full(x[ok])), dtype=float)
+            out[ok] = lp[ok] + np.where(np.isfinite(ll), ll, -np.inf)
+        return out
+
+
+def find_map(posterior: Posterior, rng: np.random.Generator, n_starts: int = 6) -> np.ndarray:
+    """Maximum a posteriori point: L-BFGS-B (bounded to the prior support) from the best of a
+    batch of random starting points, then from the others; returns the best optimum found."""
+    span = posterior.high - posterior.low
+    starts = posterior.low + span * rng.uniform(0.1, 0.9, size=(max(64, n_starts), posterior.ndim))
+    lp = posterior(starts)
+    order = np.argsort(-lp)[:n_starts]
+
+    def f(z):
+        v = posterior(posterior.low + span * z)[0]
+        return -v if np.isfinite(v) else 1e300
+
+    best_x, best_v = starts[order[0]], lp[order[0]]
+    for j in order:
+        res = optimize.minimize(f, (starts[j] - posterior.low) / span, method="L-BFGS-B",
+                                bounds=[(0.0, 1.0)] * posterior.ndim, options={"maxiter": 500})
+        if -res.fun > best_v:
+            best_v, best_x = -res.fun, posterior.low + span * res.x
+    return np.asarray(best_x, dtype=float)
+
+
+@dataclass
+class SamplerResult:
+    """Outcome of :func:`sample_posterior`."""
+
+    samples: np.ndarray  # (n_samples, ndim), burn-in discarded and thinned
+    log_prob: np.ndarray  # (n_samples,)
+    tau: np.ndarray  # (ndim,)
+    acceptance: float
+    n_steps: int
+    n_walkers: int
+    converged: bool
+    burn_in: int
+    thin: int
+    x_map: np.ndarray
+    names: list = field(default_factory=list)
+    resumed_from: int = 0
+
+
+def _initial_walkers(posterior, x0, nwalkers, rng):
+    span = posterior.high - posterior.low
+    p0 = x0 + 1e-3 * span * rng.standard_normal((nwalkers, posterior.ndim))
+    p0 = np.clip(p0, posterior.low + 1e-6 * span, posterior.high - 1e-6 * span)
+    lp = posterior(p0)
+    for _ in range(20):  # re-draw any walker that landed outside the support
+        bad = ~np.isfinite(lp)
+        if not bad.any():
+            break
+        p0[bad] = x0 + 1e-4 * span * rng.standard_normal((int(bad.sum()), posterior.ndim))
+        lp[bad] = posterior(p0[bad])
+    if not np.all(np.isfinite(lp)):
+        raise ValueError("sampler: could not place the walkers where the posterior is finite")
+    return p0
+
+
+def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = None, max_steps: int = 20000,
+                     check_every: int = 250, n_tau: float = 50.0, tau_rtol: float = 0.05,
+                     backend_path=None, progress: bool = False, x_map=None) -> SamplerResult:
+    """Run emcee until converged (chain > ``n_tau`` τ and τ stable) or ``max_steps``.
+
+    Parameters
+    ----------
+    seed : int
+        Makes the run reproducible (walker start and emcee's moves).
+    nwalkers : int, optional
+        Default ``max(32, 4 ndim)``, even.
+    backend_path : path, optional
+        emcee HDF5 backend; an existing file with the same walkers and dimension is resumed.
+    x_map : array, optional
+        Start point (default: :func:`find_map`).
+    """
+    import emcee
+
+    rng = np.random.default_rng(seed)
+    ndim = posterior.ndim
+    nwalkers = int(nwalkers or max(32, 4 * ndim))
+    nwalkers += nwalkers % 2
+    if nwalkers < 2 * ndim:
+        raise ValueError(f"nwalkers: expected at least 2 x {ndim} = {2 * ndim} walkers, got {nwalkers}")
+    backend = None
+    resumed = 0
+    if backend_path is not None:
+        backend = emcee.backends.HDFBackend(str(backend_path))
+        try:
+            it = backend.iteration
+        except (OSError, KeyError, AttributeError):
+            it = 0
+        if it > 0:
+            shape = backend.shape
+            if tuple(shape) != (nwalkers, ndim):
+                raise ValueError(
+                    f"{backend_path}: holds a chain of {shape[0]} walkers x {shape[1]} parameters, "
+                    f"this fit needs {nwalkers} x {ndim}; use a new --out folder"
+                )
+            resumed = it
+        else:
+            backend.reset(nwalkers, ndim)
+    if x_map is None:
+        x_map = find_map(posterior, rng)
+    sampler = emcee.EnsembleSampler(nwalkers, ndim, posterior, vectorize=True, backend=backend)
+    sampler.random_state = np.random.RandomState(int(rng.integers(2**31))).get_state()
+    if resumed:
+        start = backend.get_last_sample()
+    else:
+        start = _initial_walkers(posterior, x_map, nwalkers, rng)
+    old_tau = np.full(ndim, np.inf)
+    converged = False
+    tau = np.full(ndim, np.nan)
+    steps_left = max(0, max_steps - resumed)
+    for _ in sampler.sample(start, iterations=steps_left, progress=progress):
+        it = sampler.iteration
+        if it % check_every:
+            continue
+        tau = sampler.get_autocorr_time(tol=0)
+        if np.all(np.isfinite(tau)) and np.all(n_tau * tau < it) and np.all(np.abs(old_tau - tau) < tau_rtol * tau):
+            converged = True
+            break
+        old_tau = tau
+    n_steps = sampler.iteration
+    tau = sampler.get_autocorr_time(tol=0)
+    if not converged:
+        warnings.warn(
+            f"sampler: stopped at the step cap ({n_steps} steps) before the chain was {n_tau:g} "
+            f"autocorrelation times long with a stable estimate (tau = {np.round(tau, 1).tolist()}); "
+            f"the intervals may be unreliable: raise max_steps",
+            ConvergenceWarning, stacklevel=2,
+        )
+    tmax = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else n_steps / 10
+    burn = int(min(n_steps // 2, math.ceil(2 * tmax)))
+    thin = max(1, int(tmax // 2))
+    flat = sampler.get_chain(discard=burn, thin=thin, flat=True)
+    lp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
+    return SamplerResult(
+        samples=flat, log_prob=lp, tau=np.asarray(tau), acceptance=float(np.mean(sampler.acceptance_fraction)),
+        n_steps=int(n_steps), n_walkers=nwalkers, converged=converged, burn_in=burn, thin=thin,
+        x_map=np.asarray(x_map), names=list(posterior.free_names), resumed_from=resumed,
+    )
+
+
+def credible_summary(samples: np.ndarray, names) -> dict:
+    """Median, 68% and 95% central credible intervals of each parameter."""
+    out = {}
+    for j, name in enumerate(names):
+        q = np.percentile(samples[:, j], [2.5, 16, 50, 84, 97.5])
+        out[name] = {"median": float(q[2]), "ci68": [float(q[1]), float(q[3])], "ci95": [float(q[0]), float(q[4])],
+                     "mean": float(np.mean(samples[:, j])), "std": float(np.std(samples[:, j]))}
+    return out

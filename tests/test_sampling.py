@@ -1,0 +1,123 @@
+"""Sampler: emcee on analytic posteriors, the AR(1) autocorrelation check, priors, resuming."""
+
+import numpy as np
+import pytest
+
+from swerve.sampling import (
+    ConvergenceWarning,
+    Posterior,
+    Prior,
+    credible_summary,
+    find_map,
+    resolve_priors,
+    sample_posterior,
+)
+
+MEAN = np.array([0.3, -1.0])
+COV = np.array([[0.04, 0.012], [0.012, 0.09]])
+ICOV = np.linalg.inv(COV)
+
+
+def gauss_loglike(theta):
+    d = np.atleast_2d(theta)[:, :2] - MEAN
+    return -0.5 * np.einsum("wi,ij,wj->w", d, ICOV, d)
+
+
+def test_posterior_matches_analytic_gaussian():
+    """Sampled mean and covariance of a 2-D Gaussian posterior agree with the analytic ones
+    within Monte Carlo error (effective samples ~ n_samples / 1 after thinning by tau/2)."""
+    pri = resolve_priors(["a", "b"], [[-5, 5], [-6, 4]])
+    post = Posterior(gauss_loglike, pri)
+    res = sample_posterior(post, seed=3, max_steps=6000)
+    assert res.converged
+    n_eff = res.n_walkers * (res.n_steps - res.burn_in) / np.max(res.tau)
+    se = np.sqrt(np.diag(COV) / n_eff)
+    assert np.all(np.abs(res.samples.mean(0) - MEAN) < 5 * se)
+    np.testing.assert_allclose(np.cov(res.samples.T), COV, rtol=0.15)
+    s = credible_summary(res.samples, res.names)
+    # 68% interval of a Gaussian is mean +- 1 sigma
+    assert s["a"]["ci68"][1] - s["a"]["ci68"][0] == pytest.approx(2 * 0.2, rel=0.1)
+    assert 0.15 < res.acceptance < 0.9
+
+
+def test_emcee_autocorrelation_of_ar1():
+    """REFERENCES.md: AR(1) with phi = 0.9 has tau = (1+phi)/(1-phi) = 19 (analytic)."""
+    import emcee
+
+    rng = np.random.default_rng(0)
+    phi, n, nw = 0.9, 50_000, 16
+    x = np.empty((n, nw))
+    x[0] = rng.standard_normal(nw)
+    e = rng.standard_normal((n, nw)) * np.sqrt(1 - phi**2)
+    for t in range(1, n):
+        x[t] = phi * x[t - 1] + e[t]
+    tau = emcee.autocorr.integrated_time(x[:, :, None], c=5)
+    assert tau[0] == pytest.approx(19.0, rel=0.1)
+
+
+def test_fixed_and_gaussian_priors():
+    pri = resolve_priors(["a", "b"], [[-5, 5], [-6, 4]],
+                         {"a": {"kind": "fixed", "value": 0.3}, "b": {"kind": "gaussian", "mu": 0.0, "sigma": 0.3}})
+    post = Posterior(gauss_loglike, pri)
+    assert post.free_names == ["b"]
+    # posterior of b given a = mean_a: Gaussian likelihood (conditional) x Gaussian prior
+    cond_var = 1.0 / ICOV[1, 1]
+    var = 1.0 / (1.0 / cond_var + 1.0 / 0.09)
+    mean = var * (MEAN[1] / cond_var)
+    res = sample_posterior(post, seed=5, max_steps=6000)
+    assert res.samples[:, 0].mean() == pytest.approx(mean, abs=0.03)
+    assert res.samples[:, 0].std() == pytest.approx(np.sqrt(var), rel=0.1)
+
+
+def test_map_finds_the_mode():
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    np.testing.assert_allclose(find_map(post, np.random.default_rng(1)), MEAN, atol=1e-4)
+
+
+@pytest.mark.parametrize(
+    "priors, fragment",
+    [
+        ({"a": {"kind": "uniform", "low": -9, "high": 1}}, "leaves the emulator's domain"),
+        ({"a": {"kind": "gaussian", "mu": 7, "sigma": 1}}, "outside the emulator's domain"),
+        ({"a": {"kind": "fixed", "value": 9}}, "outside the emulator's domain"),
+        ({"aa": {"kind": "fixed", "value": 0}}, "did you mean 'a'"),
+        ({"a": {"kind": "lognormal"}}, "not one of"),
+    ],
+)
+def test_bad_priors_refused(priors, fragment):
+    with pytest.raises(ValueError, match=fragment):
+        resolve_priors(["a", "b"], [[-5, 5], [-6, 4]], priors)
+
+
+def test_step_cap_warns():
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    with pytest.warns(ConvergenceWarning, match="step cap"):
+        res = sample_posterior(post, seed=1, max_steps=100, check_every=50)
+    assert not res.converged
+
+
+def test_resume_from_hdf5(tmp_path):
+    """An interrupted fit resumes: the second call continues the same chain file."""
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    path = tmp_path / "chain.h5"
+    with pytest.warns(ConvergenceWarning):
+        first = sample_posterior(post, seed=2, max_steps=300, check_every=100, backend_path=path)
+    second = sample_posterior(post, seed=2, max_steps=6000, backend_path=path)
+    assert first.n_steps == 300
+    assert second.resumed_from == 300 and second.n_steps > 300 and second.converged
+    with pytest.raises(ValueError, match="walkers"):
+        sample_posterior(post, seed=2, nwalkers=40, max_steps=400, backend_path=path)
+
+
+def test_reproducible():
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    with pytest.warns(ConvergenceWarning):
+        a = sample_posterior(post, seed=11, max_steps=200, check_every=100)
+    with pytest.warns(ConvergenceWarning):
+        b = sample_posterior(post, seed=11, max_steps=200, check_every=100)
+    np.testing.assert_array_equal(a.samples, b.samples)
+
+
+def test_prior_dataclass_validation():
+    with pytest.raises(ValueError, match="positive sigma"):
+        Prior("a", "gaussian", mu=0.0, sigma=-1.0)
