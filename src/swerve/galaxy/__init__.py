@@ -16,7 +16,10 @@ from .model import (
     NegativeDensityWarning,
     component_class,
 )
+from .nfw_density import NFWHaloDensityFlat
 from .params import Parameter
+
+HALO_FLATTENINGS["density"] = NFWHaloDensityFlat
 
 __all__ = [
     "Component",
@@ -26,6 +29,7 @@ __all__ = [
     "HALO_FLATTENINGS",
     "HernquistBulge",
     "MiyamotoNagaiDisk",
+    "NFWHaloDensityFlat",
     "NFWHaloPotentialFlat",
     "NegativeDensityWarning",
     "Parameter",

@@ -1,18 +1,114 @@
-"""Fast form of the density-flattened NFW halo: compiled kernels reading an expansion table.
+"""Fast form of the density-flattened NFW halo: compiled kernels reading a node table.
 
-Placeholder: the expansion is not built yet; the kernels return NaN so that any use fails loudly.
+The potential of a density-stratified ellipsoid ``rho(m^2)`` is a one-dimensional integral over
+the ellipsoidal-shell parameter ``tau`` (Chandrasekhar 1969; Binney & Tremaine 2008, eq. 2.140).
+After the substitution ``t = ln tau`` the integrand is analytic in a strip about the real axis
+and decays exponentially at both ends, so the trapezoidal rule on a fixed grid of ``t``
+converges geometrically.  The fast form is that rule on a coarse grid built once per halo
+(:func:`swerve.galaxy.nfw_density.build_nodes`): at each node the per-axis factors
+``1/(a_i^2 + tau_k)`` and the weight are precomputed, so one evaluation costs one square root and
+one division per node.  The part ``tau > T`` is integrated analytically with ``a_i^2 + tau ~ tau``;
+it is the potential of a spherical NFW profile of scale radius ``r_s sqrt(T)``.
+
+The acceleration is the exact gradient of the fast potential (the sum is differentiated term by
+term), so the fast form is a conservative field: an orbit integrator conserves its energy.
+
+Layout (see :data:`swerve.galaxy.kernels.KIND_NFW_DENSITY_FLAT`)::
+
+    pars: [G M, r_s, mode, L = r_s sqrt(T), 1/r_s, e = step^2/48, -, aux offset]
+          mode 0: spherical (q_y = q_z = 1): the analytic NFW, no aux
+          mode 1: node table in aux
+    aux[off]                      : n, the number of nodes
+    aux[off + 1 + 4k : off+5+4k]  : 1/(1+tau_k), 1/(q_y^2+tau_k), 1/(q_z^2+tau_k), w_k
+
+with the potential ``Phi = -(G M/r_s) sum_k w_k / (1 + u_k) - G M ln(1 + r/L) / r
+- (G M e / L) (1 + r/L)^-2``, ``u_k^2 = sum_i (x_i/r_s)^2 / (a_i^2 + tau_k)``; the last term is the
+Euler-Maclaurin end correction of the trapezoidal rule at ``tau = T``.
+
+Units: positions kpc, potentials (km/s)^2, accelerations (km/s)^2/kpc.
 """
 
 import math
 
 import numba as nb
 
+_jit = nb.njit(cache=True, inline="always")
 
-@nb.njit(cache=True, inline="always")
+
+@_jit
+def _nfw_g(r, rs, gm):
+    """-(1/r) dPhi/dr of the spherical NFW Phi = -GM ln(1+r/rs)/r (acceleration = g * x)."""
+    u = r / rs
+    if u < 1e-3:
+        f = 0.5 + u * (-2.0 / 3.0 + u * (0.75 + u * (-0.8 + u * (5.0 / 6.0 + u * (-6.0 / 7.0)))))
+        return -gm * f / (rs * rs * r)
+    return -gm * (math.log1p(u) / (r * r) - 1.0 / (r * (rs + r))) / r
+
+
+@_jit
+def _nfw_phi(r, rs, gm):
+    u = r / rs
+    if u < 1e-6:
+        return -gm / rs * (1.0 - 0.5 * u + u * u / 3.0)
+    return -gm * math.log1p(u) / r
+
+
+@_jit
 def expansion_accel(p, aux, x, y, z):
-    return math.nan, math.nan, math.nan
+    """Acceleration (ax, ay, az) of the density-flattened NFW halo at (x, y, z) (kpc)."""
+    r2 = x * x + y * y + z * z
+    if r2 == 0.0:
+        return 0.0, 0.0, 0.0
+    r = math.sqrt(r2)
+    if p[2] == 0.0:
+        g = _nfw_g(r, p[1], p[0])
+        return g * x, g * y, g * z
+    L = p[3]
+    b = 1.0 / (1.0 + r / L)
+    g = _nfw_g(r, L, p[0]) - 2.0 * p[0] * p[5] / (L * L) * b * b * b / r
+    inv = p[4]
+    x2 = x * x * inv * inv
+    y2 = y * y * inv * inv
+    z2 = z * z * inv * inv
+    off = int(p[7])
+    n = int(aux[off])
+    sx = 0.0
+    sy = 0.0
+    sz = 0.0
+    j = off + 1
+    for _ in range(n):
+        c1 = aux[j]
+        c2 = aux[j + 1]
+        c3 = aux[j + 2]
+        u = math.sqrt(x2 * c1 + y2 * c2 + z2 * c3)
+        t = u + 1.0
+        f = aux[j + 3] / (u * t * t)
+        sx += f * c1
+        sy += f * c2
+        sz += f * c3
+        j += 4
+    k = -p[0] * inv * inv * inv
+    return g * x + k * sx * x, g * y + k * sy * y, g * z + k * sz * z
 
 
-@nb.njit(cache=True, inline="always")
+@_jit
 def expansion_potential(p, aux, x, y, z):
-    return math.nan
+    """Potential of the density-flattened NFW halo at (x, y, z) (kpc), zero at infinity."""
+    r = math.sqrt(x * x + y * y + z * z)
+    if p[2] == 0.0:
+        return _nfw_phi(r, p[1], p[0])
+    inv = p[4]
+    x2 = x * x * inv * inv
+    y2 = y * y * inv * inv
+    z2 = z * z * inv * inv
+    off = int(p[7])
+    n = int(aux[off])
+    s = 0.0
+    j = off + 1
+    for _ in range(n):
+        u = math.sqrt(x2 * aux[j] + y2 * aux[j + 1] + z2 * aux[j + 2])
+        s += aux[j + 3] / (1.0 + u)
+        j += 4
+    L = p[3]
+    b = 1.0 / (1.0 + r / L)
+    return -p[0] * inv * s + _nfw_phi(r, L, p[0]) - p[0] * p[5] / L * b * b
