@@ -225,51 +225,117 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
 
 
 # ------------------------------------------------------------------------ compiled kernel -----
-@nb.njit(parallel=True, cache=True, fastmath=False)
-def _loglike_kernel(cell, mean, cov, log_w, mu, sig, out):
-    """out[w, i] = log sum_k exp(log_w[i,k]) N(mean[i,k]; mu[w,c], sig[w,c] + cov[i,k])."""
+@dataclass
+class _Packed:
+    """Samples grouped into (star, cell) segments, structure-of-arrays, for the kernel."""
+
+    seg_cell: np.ndarray
+    seg_start: np.ndarray
+    seg_star: np.ndarray
+    n_star: int
+    cols: tuple  # m0, m1, m2, c00, c10, c11, c20, c21, c22, w
+
+
+def _pack(stars: StarTerms) -> _Packed:
+    n, k = stars.cell.shape
+    inside = (stars.cell >= 0) & np.isfinite(stars.log_w)
+    star_idx = np.repeat(np.arange(n), k).reshape(n, k)[inside]
+    cell = stars.cell[inside]
+    order = np.lexsort((cell, star_idx))
+    star_idx, cell = star_idx[order], cell[order]
+    mean = stars.mean[inside][order]
+    cov = stars.cov[inside][order]
+    w = np.exp(stars.log_w[inside][order])
+    key = star_idx * (cell.max() + 1 if len(cell) else 1) + cell
+    brk = np.flatnonzero(np.diff(key)) + 1
+    starts = np.concatenate([[0], brk, [len(key)]]).astype(np.int64)
+    cols = tuple(np.ascontiguousarray(a, dtype=float) for a in (
+        mean[:, 0], mean[:, 1], mean[:, 2], cov[:, 0, 0], cov[:, 1, 0], cov[:, 1, 1],
+        cov[:, 2, 0], cov[:, 2, 1], cov[:, 2, 2], w))
+    return _Packed(cell[starts[:-1]].astype(np.int64), starts, star_idx[starts[:-1]].astype(np.int64), n, cols)
+
+
+@nb.njit(parallel=True, fastmath=True, cache=True)
+def _loglike_kernel(seg_cell, seg_start, seg_star, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
+                    mu, sig, out):
+    """out[w, i] = log sum_k w_ik N(m_ik; mu[w, c], sig[w, c] + C_ik), summed over each star's
+    (star, cell) segments; sig holds the 6 lower-triangle entries (00, 10, 11, 20, 21, 22).
+
+    Gaussians are evaluated in linear space with the adjugate inverse (no log or Cholesky per
+    sample); a star whose sum underflows is redone in log space by :func:`_star_logspace`."""
     W = mu.shape[0]
-    n, k = cell.shape
+    nseg = seg_cell.shape[0]
     for wi in nb.prange(W):
-        vals = np.empty(k)
-        for i in range(n):
-            vmax = -np.inf
-            for j in range(k):
-                c = cell[i, j]
-                if c < 0 or log_w[i, j] == -np.inf:
-                    vals[j] = -np.inf
-                    continue
-                s00 = sig[wi, c, 0, 0] + cov[i, j, 0, 0]
-                s10 = sig[wi, c, 1, 0] + cov[i, j, 1, 0]
-                s20 = sig[wi, c, 2, 0] + cov[i, j, 2, 0]
-                s11 = sig[wi, c, 1, 1] + cov[i, j, 1, 1]
-                s21 = sig[wi, c, 2, 1] + cov[i, j, 2, 1]
-                s22 = sig[wi, c, 2, 2] + cov[i, j, 2, 2]
-                l00 = math.sqrt(s00)
-                l10 = s10 / l00
-                l20 = s20 / l00
-                l11 = math.sqrt(s11 - l10 * l10)
-                l21 = (s21 - l20 * l10) / l11
-                l22 = math.sqrt(s22 - l20 * l20 - l21 * l21)
-                d0 = mean[i, j, 0] - mu[wi, c, 0]
-                d1 = mean[i, j, 1] - mu[wi, c, 1]
-                d2 = mean[i, j, 2] - mu[wi, c, 2]
-                y0 = d0 / l00
-                y1 = (d1 - l10 * y0) / l11
-                y2 = (d2 - l20 * y0 - l21 * y1) / l22
-                v = (log_w[i, j] - 0.5 * (y0 * y0 + y1 * y1 + y2 * y2)
-                     - math.log(l00 * l11 * l22) - 1.5 * 1.8378770664093453)
-                vals[j] = v
-                if v > vmax:
-                    vmax = v
-            if vmax == -np.inf:
-                out[wi, i] = -np.inf
-                continue
-            acc = 0.0
-            for j in range(k):
-                if vals[j] > -np.inf:
-                    acc += math.exp(vals[j] - vmax)
-            out[wi, i] = vmax + math.log(acc)
+        acc = np.zeros(n_star)
+        for s in range(nseg):
+            c = seg_cell[s]
+            a00 = sig[wi, c, 0]
+            a10 = sig[wi, c, 1]
+            a11 = sig[wi, c, 2]
+            a20 = sig[wi, c, 3]
+            a21 = sig[wi, c, 4]
+            a22 = sig[wi, c, 5]
+            u0 = mu[wi, c, 0]
+            u1 = mu[wi, c, 1]
+            u2 = mu[wi, c, 2]
+            tot = 0.0
+            for j in range(seg_start[s], seg_start[s + 1]):
+                s00 = a00 + c00[j]
+                s10 = a10 + c10[j]
+                s11 = a11 + c11[j]
+                s20 = a20 + c20[j]
+                s21 = a21 + c21[j]
+                s22 = a22 + c22[j]
+                i00 = s11 * s22 - s21 * s21
+                i10 = s20 * s21 - s10 * s22
+                i20 = s10 * s21 - s11 * s20
+                i11 = s00 * s22 - s20 * s20
+                i21 = s10 * s20 - s00 * s21
+                i22 = s00 * s11 - s10 * s10
+                det = s00 * i00 + s10 * i10 + s20 * i20
+                d0 = m0[j] - u0
+                d1 = m1[j] - u1
+                d2 = m2[j] - u2
+                q = (d0 * (i00 * d0 + 2.0 * (i10 * d1 + i20 * d2))
+                     + d1 * (i11 * d1 + 2.0 * i21 * d2) + i22 * d2 * d2) / det
+                tot += w[j] * math.exp(-0.5 * q) / math.sqrt(det)
+            acc[seg_star[s]] += tot
+        for i in range(n_star):
+            if acc[i] > 1e-300:
+                out[wi, i] = math.log(acc[i]) - 1.5 * 1.8378770664093453
+            else:
+                out[wi, i] = np.nan  # recomputed in log space
+
+
+@nb.njit(cache=True)
+def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, c20, c21, c22, w, mu, sig):
+    """log-likelihood of star i for one walker, in log space (for sums that underflow)."""
+    best = -np.inf
+    vals = []
+    for s in range(seg_cell.shape[0]):
+        if seg_star[s] != i:
+            continue
+        c = seg_cell[s]
+        for j in range(seg_start[s], seg_start[s + 1]):
+            S = np.empty((3, 3))
+            S[0, 0] = sig[c, 0] + c00[j]
+            S[1, 0] = S[0, 1] = sig[c, 1] + c10[j]
+            S[1, 1] = sig[c, 2] + c11[j]
+            S[2, 0] = S[0, 2] = sig[c, 3] + c20[j]
+            S[2, 1] = S[1, 2] = sig[c, 4] + c21[j]
+            S[2, 2] = sig[c, 5] + c22[j]
+            d = np.array([m0[j] - mu[c, 0], m1[j] - mu[c, 1], m2[j] - mu[c, 2]])
+            L = np.linalg.cholesky(S)
+            y = np.linalg.solve(L, d)
+            v = math.log(w[j]) - 0.5 * np.sum(y * y) - math.log(L[0, 0] * L[1, 1] * L[2, 2])
+            vals.append(v)
+            best = max(best, v)
+    if best == -np.inf:
+        return -np.inf
+    acc = 0.0
+    for v in vals:
+        acc += math.exp(v - best)
+    return best + math.log(acc) - 1.5 * 1.8378770664093453
 
 
 # ------------------------------------------------------------------------------ likelihood ----
@@ -293,6 +359,7 @@ class Likelihood:
         self.spec = spec
         self.include_emulator_variance = include_emulator_variance
         self.parameter_names = list(emulator.parameter_names)
+        self._packed = _pack(stars)
 
     def cell_gaussians(self, theta):
         """Per-walker cell means (W, n_cells, 3) and covariances (W, n_cells, 3, 3)."""
@@ -317,9 +384,14 @@ class Likelihood:
     def per_star(self, theta) -> np.ndarray:
         """Log-likelihood of every star, (W, n_stars)."""
         mu, sig = self.cell_gaussians(theta)
-        out = np.empty((mu.shape[0], self.stars.n))
-        s = self.stars
-        _loglike_kernel(s.cell, s.mean, s.cov, s.log_w, mu, sig, out)
+        tri = np.ascontiguousarray(np.stack(
+            [sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0], sig[..., 2, 1], sig[..., 2, 2]], -1))
+        p = self._packed
+        out = np.empty((mu.shape[0], p.n_star))
+        _loglike_kernel(p.seg_cell, p.seg_start, p.seg_star, p.n_star, *p.cols, mu, tri, out)
+        bad = np.argwhere(np.isnan(out))
+        for wi, i in bad:  # underflow: a star far in the tail of this walker's model
+            out[wi, i] = _star_logspace(p.seg_cell, p.seg_start, p.seg_star, i, *p.cols, mu[wi], tri[wi])
         return out
 
     def __call__(self, theta) -> np.ndarray:
