@@ -170,7 +170,8 @@ def velocity_moments(catalog, samples, solar=None):
     return v_mean, v_cov
 
 
-def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: float = 0.5) -> StarTerms:
+def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: float = 0.5,
+                  r_min: float | None = None, allow_empty: bool = False) -> StarTerms:
     """The θ-independent terms of every usable star; stars outside the selection are excluded
     and listed in ``StarTerms.excluded`` (never silently used).
 
@@ -183,11 +184,21 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
         The emulator's summary definition (its cells).
     min_inside : float
         Smallest fraction of a star's sample weight inside the cells for it to be used.
+    r_min : float, optional
+        A stricter minimum galactocentric radius (kpc) than the cells': samples inside it are
+        treated as outside the selection.
+    allow_empty : bool
+        Return an empty StarTerms (with the reasons in ``excluded``) instead of raising when no
+        star is usable.
     """
     if samples.n != catalog.n:
         raise ValueError(f"samples: expected {catalog.n} stars (the catalog's), got {samples.n}")
     pos = samples.position
     cell = spec.cell_index(pos)
+    r_lo = spec.r_edges[0]
+    if r_min is not None and r_min > r_lo:
+        cell = np.where(np.linalg.norm(pos, axis=-1) < r_min, -1, cell)
+        r_lo = r_min
     v_mean, v_cov = velocity_moments(catalog, samples, solar)
     B = _folding_basis(pos)
     u_mean = np.einsum("nkij,nkj->nki", B, v_mean)
@@ -204,7 +215,7 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
         if inside[i] < min_inside:
             r_med = float(np.median(np.linalg.norm(pos[i], axis=-1)))
             reason = (f"only {100 * inside[i]:.0f}% of its distance samples lie inside the emulator's cells "
-                      f"(r in [{spec.r_edges[0]:g}, {spec.r_edges[-1]:g}] kpc; median r = {r_med:.1f} kpc)")
+                      f"(r in [{r_lo:g}, {spec.r_edges[-1]:g}] kpc; median r = {r_med:.1f} kpc)")
         elif vr_mean[i] <= 0:
             reason = f"it moves inward (v_r = {vr_mean[i]:.0f} km/s); the emulator models outgoing stars"
         if reason:
@@ -216,7 +227,7 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
     terms = StarTerms(np.asarray(catalog.ids), cell, u_mean, u_cov, log_w, excluded)
     out = terms.subset(keep)
     out.excluded = excluded
-    if out.n == 0:
+    if out.n == 0 and not allow_empty:
         raise ValueError(
             f"{catalog.source}: no star is usable inside the emulator's selection "
             f"({len(excluded)} excluded; first: {excluded[0]['id']!r}: {excluded[0]['reason']})"

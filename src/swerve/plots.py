@@ -51,3 +51,86 @@ def galaxy_curves(galaxy, path, r_min=0.5, r_max=200.0, measurements=()):
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
+
+
+_LABELS = {
+    "q_y": r"$q_y$", "q_z": r"$q_z$", "m_halo": r"$M_{\rm halo}$ [M$_\odot$]", "m_disk": r"$M_{\rm disk}$ [M$_\odot$]",
+    "r_s": r"$r_s$ [kpc]", "slope": r"launch slope", "v_min": r"$v_{\rm min}$", "v_max": r"$v_{\rm max}$",
+}
+
+
+def corner_plot(samples, names, path, truths=None):
+    """Corner plot of posterior samples (the corner package), with true values if known."""
+    import corner
+
+    plt = _pyplot()
+    labels = [_LABELS.get(n, n) for n in names]
+    fig = corner.corner(
+        samples, labels=labels, truths=truths, quantiles=[0.16, 0.5, 0.84], show_titles=True,
+        title_fmt=".3g", levels=(0.393, 0.865), plot_datapoints=False, fill_contours=True,
+        color="#1f4e79", truth_color="#c0392b",
+    )
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+def posterior_predictive(stars, mu, sig, spec, path):
+    """Observed against emulated folded deflections v_θ' in each position cell.
+
+    ``stars``: table with ``cell``, ``v_tf_obs``, ``v_tf_err`` (weighted over each star's
+    samples); ``mu``/``sig``: emulated cell means and covariances of posterior draws,
+    (n_draws, n_cells, 3) and (n_draws, n_cells, 3, 3).
+    """
+    plt = _pyplot()
+    n_cells = spec.n_cells
+    m = mu[..., 1]
+    sd = np.sqrt(sig[..., 1, 1])
+    fig, ax = plt.subplots(figsize=(max(7, 0.6 * n_cells + 2), 4.5), constrained_layout=True)
+    x = np.arange(n_cells)
+    lo, hi = np.percentile(m, [16, 84], axis=0)
+    ax.fill_between(x, np.median(m - sd, 0), np.median(m + sd, 0), step="mid", color="#9ecae1", alpha=0.5,
+                    label="emulated population: mean ± intrinsic sd")
+    ax.errorbar(x, np.median(m, 0), yerr=[np.median(m, 0) - lo, hi - np.median(m, 0)], fmt="s", color="#08519c",
+                ms=5, capsize=3, label="emulated mean (68% of posterior)")
+    cell = np.asarray(stars["cell"])
+    rng = np.random.default_rng(0)
+    jit = rng.uniform(-0.25, 0.25, len(cell))
+    ax.errorbar(cell + jit, stars["v_tf_obs"], yerr=stars["v_tf_err"], fmt=".", color="0.35", alpha=0.35,
+                elinewidth=0.6, label="stars (measured, ±1σ)")
+    means = [np.average(stars["v_tf_obs"][cell == c], weights=1 / np.asarray(stars["v_tf_err"][cell == c]) ** 2)
+             if np.any(cell == c) else np.nan for c in range(n_cells)]
+    ax.plot(x, means, "D", color="#d95f02", ms=6, label="stars: inverse-variance mean")
+    ax.set_xticks(x)
+    ax.set_xticklabels(spec.cell_labels(), rotation=60, ha="right", fontsize=7)
+    ax.set_ylabel(r"folded deflection $v_\theta\,\mathrm{sign}(z)$ [km/s]")
+    span = np.nanmax(np.abs(np.concatenate([hi, lo, np.nan_to_num(np.asarray(means))]))) * 3 + 5
+    ax.set_ylim(-span, span)
+    ax.axhline(0, color="0.6", lw=0.8)
+    ax.legend(fontsize=7, loc="upper right")
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+def variants_plot(rows, path):
+    """Medians and 68% intervals of the shape parameters, one row per variant."""
+    plt = _pyplot()
+    params = [p for p in ("q_y", "q_z", "m_halo", "m_disk") if np.isfinite(rows[0].get(f"{p}_median", np.nan))]
+    fig, axes = plt.subplots(1, len(params), figsize=(3.2 * len(params), 0.45 * len(rows) + 1.6),
+                             sharey=True, constrained_layout=True, squeeze=False)
+    y = np.arange(len(rows))[::-1]
+    for ax, p in zip(axes[0], params):
+        med = np.array([r[f"{p}_median"] for r in rows])
+        lo = np.array([r[f"{p}_lo68"] for r in rows])
+        hi = np.array([r[f"{p}_hi68"] for r in rows])
+        ax.errorbar(med, y, xerr=[med - lo, hi - med], fmt="o", color="#1f4e79", capsize=3)
+        if p in ("q_y", "q_z"):
+            ax.axvline(1.0, color="0.6", ls="--", lw=0.8)
+        ax.set_xlabel(_LABELS.get(p, p))
+        ax.grid(alpha=0.3)
+    axes[0][0].set_yticks(y)
+    axes[0][0].set_yticklabels([r["variant"] for r in rows], fontsize=8)
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path

@@ -1,0 +1,398 @@
+"""A fit of an observed catalog against an emulator: configuration, star terms with reuse,
+sampling, and the run folder a researcher reads.
+
+Data flow: catalog (validated) -> per-star distance samples and analytic velocity moments
+(:mod:`swerve.likelihood`, cached per star in the run folder, so a refit after a star is added
+recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampling`) -> results.
+
+Run folder (``--out``)::
+
+    chain.h5        emcee HDF5 backend (an interrupted fit resumes from it)
+    stars.npz       the θ-independent terms of every star, with a hash of its inputs
+    summary.json    per parameter: median, 68% / 95% credible intervals; P(q_z < 1), P(q_y < 1);
+                    autocorrelation times, acceptance, convergence
+    summary.ecsv    the same table, with units
+    stars.ecsv      each star's log-likelihood at the posterior median and its pull toward a
+                    spherical halo (which stars drive the result); excluded stars and why
+    corner.png      the posterior (corner package)
+    ppc.png         observed against emulated deflections in the position cells
+    fit.json        the configuration, emulator path and content hash, solar parameters, catalog,
+                    swerve version
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .config import Key, Schema, Section, load_config, validate
+
+FIT_SCHEMA = Schema("fit", (
+    Section("catalog", (
+        Key("columns", "str", "", doc="column mapping for other names, e.g. 'ra=RA_deg,dec=DE_deg'"),
+        Key("units", "str", "", doc="units of unit-less (CSV) columns, e.g. 'distance=pc'"),
+        Key("drop_invalid", "bool", False, doc="drop invalid rows (reported) instead of refusing the file"),
+    )),
+    Section("errors", (
+        Key("samples", "int", 64, min=1, doc="distance samples per star (importance sampling)"),
+        Key("distance_prior", "str", "none", choices=("none", "uniform-volume", "exponential-length"),
+            doc="prior on distances from parallaxes"),
+        Key("length_scale", "float", 10.0, min=0.01, doc="length scale of 'exponential-length', kpc"),
+        Key("max_distance", "float", 300.0, min=0.1, doc="upper limit of 'uniform-volume', kpc"),
+        Key("seed", "int", 1, min=0, doc="seed of the per-star error samples"),
+    )),
+    Section("priors", (
+        Key("parameters", "table", {}, doc="per parameter: {kind = 'uniform'|'gaussian'|'fixed', low, high, mu, sigma, value}"),
+    )),
+    Section("selection", (
+        Key("r_min", "float", 0.0, min=0.0, doc="stricter minimum galactocentric radius of the stars used, kpc (0: the emulator's)"),
+    )),
+    Section("sampler", (
+        Key("nwalkers", "int", 0, min=0, doc="walkers (0: max(32, 4 x free parameters))"),
+        Key("max_steps", "int", 20000, min=50, doc="step cap"),
+        Key("check_every", "int", 250, min=10, doc="steps between autocorrelation checks"),
+        Key("n_tau", "float", 50.0, min=1.0, doc="converged when the chain is longer than n_tau x tau ..."),
+        Key("tau_rtol", "float", 0.05, min=0.0, doc="... and tau changed by less than this fraction"),
+        Key("seed", "int", 1, min=0, doc="seed of the sampler"),
+    )),
+    Section("frame", (
+        Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
+    )),
+    Section("emulator", (
+        Key("include_variance", "bool", True, doc="fold the emulator's predictive variance into the density"),
+    )),
+))
+
+
+def load_fit_config(path=None, overrides: dict | None = None) -> dict:
+    """The fit configuration (defaults when ``path`` is None), with section overrides merged."""
+    from .config import defaults
+
+    cfg = load_config(path, FIT_SCHEMA) if path else defaults(FIT_SCHEMA)
+    if overrides:
+        merged = {k: dict(v) for k, v in cfg.items()}
+        for sec, vals in overrides.items():
+            merged.setdefault(sec, {}).update(vals)
+        cfg = validate(merged, FIT_SCHEMA, source=str(path or "<overrides>"))
+    return cfg
+
+
+# ------------------------------------------------------------------------------ star terms -----
+def _star_hash(catalog, i, settings: str) -> str:
+    fields = ("ra", "dec", "distance", "distance_err", "parallax", "parallax_err", "pmra", "pmra_err", "pmdec",
+              "pmdec_err", "vlos", "vlos_err", "corr_pmra_pmdec", "corr_parallax_pmra", "corr_parallax_pmdec")
+    vals = np.array([getattr(catalog, f)[i] for f in fields], dtype=float)
+    h = hashlib.sha256()
+    h.update(str(catalog.ids[i]).encode())
+    h.update(vals.tobytes())
+    h.update(settings.encode())
+    return h.hexdigest()
+
+
+def _subset_catalog(catalog, idx):
+    import dataclasses
+
+    arrays = {f.name: getattr(catalog, f.name)[idx] for f in dataclasses.fields(catalog)
+              if isinstance(getattr(catalog, f.name), np.ndarray)}
+    return dataclasses.replace(catalog, **arrays)
+
+
+def _star_seed(seed: int, star_id: str) -> np.random.SeedSequence:
+    digest = hashlib.sha256(str(star_id).encode()).digest()
+    return np.random.SeedSequence([seed, int.from_bytes(digest[:8], "little")])
+
+
+def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
+    """θ-independent terms of every star (a :class:`~swerve.likelihood.StarTerms`), each star's
+    distance samples drawn from its own seed (``[errors] seed`` and its id), reusing the cached
+    terms of unchanged stars from ``cache_path``. Returns (terms, n_reused)."""
+    from .catalog import draw_samples
+    from .likelihood import StarTerms, prepare_stars
+
+    e = cfg["errors"]
+    settings = json.dumps({"k": e["samples"], "prior": e["distance_prior"], "L": e["length_scale"],
+                           "dmax": e["max_distance"], "seed": e["seed"], "solar": solar.to_dict(),
+                           "spec": spec.to_dict(), "r_min": r_min, "v": 1}, sort_keys=True)
+    hashes = [_star_hash(catalog, i, settings) for i in range(catalog.n)]
+    cached = {}
+    if cache_path is not None and Path(cache_path).is_file():
+        try:
+            with np.load(cache_path, allow_pickle=False) as z:
+                for j, hsh in enumerate(z["hash"]):
+                    cached[str(hsh)] = (z["cell"][j], z["mean"][j], z["cov"][j], z["log_w"][j])
+        except (OSError, KeyError, ValueError):
+            cached = {}
+    cells, means, covs, logws, keep_hash, ids, excluded = [], [], [], [], [], [], []
+    reused = 0
+    for i in range(catalog.n):
+        if hashes[i] in cached:
+            c, m, cv, lw = cached[hashes[i]]
+            reused += 1
+        else:
+            sub = _subset_catalog(catalog, [i])
+            rng = np.random.default_rng(_star_seed(e["seed"], catalog.ids[i]))
+            smp = draw_samples(sub, e["samples"], rng, distance_prior=e["distance_prior"], solar=solar,
+                               length_scale=e["length_scale"], max_distance=e["max_distance"])
+            t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
+            if t.n == 0:  # outside the selection: reported, never silently used
+                excluded.extend(t.excluded)
+                continue
+            c, m, cv, lw = t.cell[0], t.mean[0], t.cov[0], t.log_w[0]
+        cells.append(c)
+        means.append(m)
+        covs.append(cv)
+        logws.append(lw)
+        keep_hash.append(hashes[i])
+        ids.append(catalog.ids[i])
+    if not ids:
+        first = excluded[0] if excluded else {"id": "?", "reason": "empty catalog"}
+        raise ValueError(f"{catalog.source}: no star is usable inside the emulator's selection "
+                         f"({len(excluded)} excluded; first: {first['id']!r}: {first['reason']})")
+    terms = StarTerms(np.asarray(ids), np.asarray(cells), np.asarray(means), np.asarray(covs),
+                      np.asarray(logws), excluded)
+    if cache_path is not None:
+        tmp = Path(cache_path).with_suffix(".tmp.npz")
+        np.savez(tmp, hash=np.asarray(keep_hash), cell=terms.cell, mean=terms.mean, cov=terms.cov, log_w=terms.log_w)
+        os.replace(tmp, cache_path)
+    return terms, reused
+
+
+# ------------------------------------------------------------------------------------ fit ------
+@dataclass
+class FitOutcome:
+    summary: dict
+    out_dir: Path
+    terminal: str
+
+
+def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, log=print) -> FitOutcome:
+    """Fit a catalog against an emulator and write the run folder (module docstring)."""
+    from .catalog import parse_columns, parse_units, read_catalog
+    from .emulate import content_hash, load
+    from .frames import SolarParameters
+    from .likelihood import Likelihood
+    from .sampling import Posterior, credible_summary, resolve_priors, sample_posterior
+    from .summaries import SummarySpec
+
+    t_start = time.perf_counter()
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    emu = load(emulator_path)
+    meta = emu.metadata or {}
+    if "summaries" not in meta:
+        raise ValueError(f"{emulator_path}: the emulator records no summary definition; it was not made by swerve train")
+    spec = SummarySpec.from_dict(meta["summaries"])
+    solar = SolarParameters.from_name(cfg["frame"]["solar"])
+    notes = []
+    emu_solar = (meta.get("solar") or {}).get("name")
+    if emu_solar and emu_solar != solar.name:
+        notes.append(f"the fit moves stars with solar parameters {solar.name!r}; the emulator was trained "
+                     f"with {emu_solar!r} (the emulator is galactocentric, so only the stars' transform changes)")
+    emu_rmin = (meta.get("selection") or {}).get("r_min") or 0.0
+    r_min = cfg["selection"]["r_min"]
+    if r_min and r_min < emu_rmin:
+        raise ValueError(f"[selection] r_min = {r_min:g} kpc is looser than the emulator's selection "
+                         f"(r >= {emu_rmin:g} kpc): stars there are outside what it was trained on")
+    if r_min and r_min > spec.r_edges[0]:
+        notes.append(f"stars with r < {r_min:g} kpc are excluded (stricter than the emulator's {emu_rmin:g} kpc)")
+
+    c = cfg["catalog"]
+    catalog = read_catalog(catalog_path, columns=parse_columns(c["columns"] or None),
+                           units=parse_units(c["units"] or None), drop_invalid=c["drop_invalid"])
+    for p in catalog.problems:
+        notes.append(f"dropped: {p}")
+    t0 = time.perf_counter()
+    terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
+    t_terms = time.perf_counter() - t0
+    like = Likelihood(emu, terms, spec, include_emulator_variance=cfg["emulator"]["include_variance"])
+    names = list(emu.parameter_names)
+    bounds = np.asarray(emu.bounds, dtype=float)
+    priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
+    post = Posterior(like, priors)
+
+    s = cfg["sampler"]
+    # what defines the chain: the stars, the emulator and the configuration, except the step cap
+    # (raising max_steps continues the same chain)
+    key_cfg = {k: (dict(v, max_steps=None) if k == "sampler" else v) for k, v in cfg.items()}
+    data_key = hashlib.sha256(("".join(sorted(map(str, terms.ids))) + json.dumps(key_cfg, sort_keys=True, default=str)
+                               + content_hash(emulator_path)).encode()).hexdigest()
+    chain = out_dir / "chain.h5"
+    state_file = out_dir / "chain.key"
+    previous_start = None
+    if chain.exists() and (not state_file.exists() or state_file.read_text().strip() != data_key):
+        previous_start = _last_walkers(chain, post.ndim)
+        chain.unlink()
+        notes.append("the data or configuration changed since the chain in this folder: a new chain was "
+                     "started from the previous one's final walkers")
+    state_file.write_text(data_key)
+    t1 = time.perf_counter()
+    res = sample_posterior(post, seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=s["max_steps"],
+                           check_every=s["check_every"], n_tau=s["n_tau"], tau_rtol=s["tau_rtol"],
+                           backend_path=chain, progress=progress,
+                           x_map=None if previous_start is None else previous_start)
+    t_sample = time.perf_counter() - t1
+
+    summ = credible_summary(res.samples, res.names)
+    for j, n in enumerate(res.names):
+        summ[n]["tau"] = float(res.tau[j])
+    fixed = {p.name: p.value for p in priors if p.kind == "fixed"}
+    probs = {}
+    for q in ("q_z", "q_y"):
+        if q in res.names:
+            probs[f"P({q}<1)"] = float(np.mean(res.samples[:, res.names.index(q)] < 1.0))
+    summary = {
+        "parameters": summ,
+        "fixed": fixed,
+        "probabilities": probs,
+        "sampler": {"n_walkers": res.n_walkers, "n_steps": res.n_steps, "burn_in": res.burn_in, "thin": res.thin,
+                    "acceptance": res.acceptance, "converged": res.converged, "resumed_from": res.resumed_from,
+                    "n_samples": int(len(res.samples))},
+        "stars": {"used": terms.n, "excluded": terms.excluded, "terms_reused": reused},
+        "timing_s": {"star_terms": round(t_terms, 2), "sampling": round(t_sample, 2),
+                     "total": round(time.perf_counter() - t_start, 2)},
+        "notes": notes,
+    }
+    med = np.array([summ[n]["median"] for n in res.names])
+    _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path,
+                   content_hash(emulator_path), solar, meta, priors)
+    text = terminal_summary(summary, catalog_path, emulator_path)
+    return FitOutcome(summary, out_dir, text)
+
+
+def _last_walkers(chain, ndim):
+    try:
+        import emcee
+
+        b = emcee.backends.HDFBackend(str(chain), read_only=True)
+        last = b.get_last_sample().coords
+        if last.shape[1] == ndim:
+            return np.median(last, axis=0)
+    except Exception:  # noqa: BLE001 - an unreadable old chain is simply not reused
+        return None
+    return None
+
+
+def _write_json(path, obj):
+    tmp = Path(str(path) + ".tmp")
+    tmp.write_text(json.dumps(obj, indent=2, default=_json_default))
+    os.replace(tmp, path)
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    return str(o)
+
+
+def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path, emu_hash,
+                   solar, meta, priors):
+    from astropy.table import Table
+
+    from . import plots
+
+    _write_json(out_dir / "summary.json", summary)
+    rows = []
+    for n in res.names:
+        s = summary["parameters"][n]
+        rows.append((n, s["median"], s["ci68"][0], s["ci68"][1], s["ci95"][0], s["ci95"][1], s["tau"]))
+    t = Table(rows=rows, names=("parameter", "median", "lo68", "hi68", "lo95", "hi95", "tau"))
+    t.meta = {"probabilities": summary["probabilities"], "acceptance": summary["sampler"]["acceptance"],
+              "converged": summary["sampler"]["converged"], "swerve_version": __version__}
+    _atomic_table(t, out_dir / "summary.ecsv")
+
+    # per-star contributions at the posterior median, and the pull toward a spherical halo
+    full_med = post.full(med[None, :])
+    ll_med = like.per_star(full_med)[0]
+    names = post.names
+    sph = full_med.copy()
+    have_sph = False
+    for q in ("q_y", "q_z"):
+        if q in names:
+            j = names.index(q)
+            lo, hi = np.asarray(like.emulator.bounds)[j]
+            if lo <= 1.0 <= hi:
+                sph[0, j] = 1.0
+                have_sph = True
+    st = Table()
+    st["id"] = terms.ids.astype(str)
+    st["loglike_median"] = ll_med
+    if have_sph:
+        st["dloglike_vs_spherical"] = ll_med - like.per_star(sph)[0]
+        st["dloglike_vs_spherical"].description = "log L at the posterior median minus log L with q_y = q_z = 1"
+    w = np.exp(terms.log_w)
+    st["v_tf_obs"] = np.sum(w * terms.mean[..., 1], axis=1)
+    st["v_tf_err"] = np.sqrt(np.sum(w * terms.cov[..., 1, 1], axis=1))
+    st["cell"] = [int(np.bincount(c[c >= 0]).argmax()) for c in terms.cell]
+    st.meta = {"excluded": summary["stars"]["excluded"]}
+    _atomic_table(st, out_dir / "stars.ecsv")
+
+    fit_record = {
+        "swerve_version": __version__,
+        "catalog": {"source": str(catalog.source), "n_rows": int(catalog.n), "dropped_rows": list(catalog.dropped_rows)},
+        "emulator": {"path": str(emulator_path), "content_hash": emu_hash, "parameters": list(like.emulator.parameter_names),
+                     "bounds": np.asarray(like.emulator.bounds).tolist(), "selection": meta.get("selection"),
+                     "galaxy": meta.get("galaxy")},
+        "priors": [p.to_dict() for p in priors],
+        "config": cfg,
+        "solar": solar.to_dict(),
+        "summaries": spec.to_dict(),
+    }
+    _write_json(out_dir / "fit.json", fit_record)
+
+    truth = _truth_from_meta(catalog.meta, res.names)
+    plots.corner_plot(res.samples, res.names, out_dir / "corner.png", truths=truth)
+    draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=min(200, len(res.samples)), replace=False)]
+    mu, sig = like.cell_gaussians(post.full(draws))
+    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png")
+
+
+def _truth_from_meta(meta, names):
+    """True parameters stated in a mock catalog's metadata, for the plots (None if absent)."""
+    if not isinstance(meta, dict):
+        return None
+    truth = meta.get("true_parameters") or meta.get("truth")
+    if not isinstance(truth, dict):
+        return None
+    vals = [truth.get(n) for n in names]
+    return vals if any(v is not None for v in vals) else None
+
+
+def _atomic_table(table, path):
+    tmp = Path(str(path) + ".tmp.ecsv")
+    table.write(tmp, format="ascii.ecsv", overwrite=True)
+    os.replace(tmp, path)
+
+
+def terminal_summary(summary, catalog_path, emulator_path) -> str:
+    """The few lines a person reads at a glance."""
+    s = summary["sampler"]
+    lines = [f"swerve fit: {catalog_path} against {emulator_path}",
+             f"  stars used: {summary['stars']['used']}, excluded: {len(summary['stars']['excluded'])}"
+             + (f", reused from the last fit: {summary['stars']['terms_reused']}" if summary['stars']['terms_reused'] else ""),
+             f"  chain: {s['n_walkers']} walkers x {s['n_steps']} steps, acceptance {s['acceptance']:.2f}, "
+             + ("converged" if s["converged"] else "NOT converged (step cap hit)"), ""]
+    lines.append(f"  {'parameter':<10} {'median':>11} {'68% interval':>26} {'95% interval':>26} {'tau':>6}")
+    for n, p in summary["parameters"].items():
+        lines.append(f"  {n:<10} {p['median']:11.4g} [{p['ci68'][0]:11.4g}, {p['ci68'][1]:11.4g}] "
+                     f"[{p['ci95'][0]:11.4g}, {p['ci95'][1]:11.4g}] {p['tau']:6.1f}")
+    for n, v in summary["fixed"].items():
+        lines.append(f"  {n:<10} {v:11.4g}   (fixed)")
+    if summary["probabilities"]:
+        lines.append("  " + ", ".join(f"{k} = {v:.3f}" for k, v in summary["probabilities"].items()))
+    for e in summary["stars"]["excluded"][:5]:
+        lines.append(f"  excluded {e['id']} (row {e['row']}): {e['reason']}")
+    if len(summary["stars"]["excluded"]) > 5:
+        lines.append(f"  ... and {len(summary['stars']['excluded']) - 5} more excluded (see stars.ecsv)")
+    for n in summary["notes"]:
+        lines.append(f"  note: {n}")
+    lines.append(f"  time: {summary['timing_s']['total']:.1f} s")
+    return "\n".join(lines)

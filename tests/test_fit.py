@@ -1,0 +1,141 @@
+"""swerve fit end to end on the smoke emulator: outputs, refits, resuming, bad input."""
+
+import json
+
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from swerve.cli import main
+from swerve.fit import load_fit_config, run_fit
+
+# Short chains keep these plumbing tests fast; whether they converge is not what they check
+# (tests/test_sampling.py checks convergence), so the convergence warning is ignored here only.
+pytestmark = pytest.mark.filterwarnings("ignore::swerve.sampling.ConvergenceWarning")
+
+FAST = {"sampler": {"max_steps": 300, "check_every": 100, "n_tau": 5.0, "tau_rtol": 0.5}, "errors": {"samples": 8}}
+
+
+@pytest.fixture(scope="module")
+def mock_catalog(tmp_path_factory, smoke_run):
+    """A mock from the forward model inside the smoke emulator's domain and selection."""
+    from swerve.galaxy import Galaxy
+    from swerve.launch import BoundedPowerLawSpeed
+    from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+    from swerve.selection import Selection
+
+    g = Galaxy.from_name(halo_flattening="density", q_y=1.05, q_z=0.9)
+    launch = BoundedPowerLawSpeed(v_min=700.0, v_max=3000.0, slope=-0.5)
+    errs = ErrorModel(distance_frac=ErrorLaw(0.05), pm=ErrorLaw(0.0, 0.01, 1.0), vlos=ErrorLaw(5.0))
+    t = make_mock(g, launch, Selection(r_min=10.0, r_max=250.0, outgoing=True), errs, 60, 5,
+                  flight_time_max=300.0, bank_size=1500)
+    path = tmp_path_factory.mktemp("mock") / "mock.ecsv"
+    write_mock(t, path)
+    return path
+
+
+def test_fit_writes_the_run_folder(tmp_path, smoke_run, mock_catalog):
+    _, emu = smoke_run
+    out = tmp_path / "fit"
+    outcome = run_fit(mock_catalog, emu, out, load_fit_config(None, FAST))
+    for name in ("chain.h5", "summary.json", "summary.ecsv", "stars.ecsv", "corner.png", "ppc.png", "fit.json",
+                 "stars.npz"):
+        assert (out / name).is_file(), name
+    s = json.loads((out / "summary.json").read_text())
+    assert set(s["parameters"]) == {"q_y", "q_z", "slope"}
+    for p in s["parameters"].values():
+        assert p["ci95"][0] <= p["ci68"][0] <= p["median"] <= p["ci68"][1] <= p["ci95"][1]
+    assert 0.0 <= s["probabilities"]["P(q_z<1)"] <= 1.0
+    rec = json.loads((out / "fit.json").read_text())
+    assert len(rec["emulator"]["content_hash"]) == 64 and rec["solar"]["name"] == "v4.0"
+    stars = Table.read(out / "stars.ecsv")
+    assert len(stars) == s["stars"]["used"] and "dloglike_vs_spherical" in stars.colnames
+    assert "q_z" in outcome.terminal and "68% interval" in outcome.terminal
+
+
+def test_refit_after_adding_a_star_reuses_the_others(tmp_path, smoke_run, mock_catalog):
+    _, emu = smoke_run
+    full = Table.read(mock_catalog)
+    first = tmp_path / "first.ecsv"
+    full[:-1].write(first, format="ascii.ecsv")
+    out = tmp_path / "fit"
+    cfg = load_fit_config(None, FAST)
+    a = run_fit(first, emu, out, cfg)
+    b = run_fit(mock_catalog, emu, out, cfg)
+    n_used_a = a.summary["stars"]["used"]
+    assert b.summary["stars"]["terms_reused"] == n_used_a
+    assert any("data or configuration changed" in n for n in b.summary["notes"])
+    # the reused terms equal a fresh computation
+    fresh = tmp_path / "fresh"
+    c = run_fit(mock_catalog, emu, fresh, cfg)
+    za, zc = np.load(out / "stars.npz"), np.load(fresh / "stars.npz")
+    np.testing.assert_array_equal(za["mean"], zc["mean"])
+    assert c.summary["stars"]["terms_reused"] == 0
+
+
+def test_interrupted_fit_resumes(tmp_path, smoke_run, mock_catalog):
+    _, emu = smoke_run
+    out = tmp_path / "fit"
+    short = load_fit_config(None, {**FAST, "sampler": {**FAST["sampler"], "max_steps": 200, "n_tau": 1e3}})
+    run_fit(mock_catalog, emu, out, short)
+    longer = load_fit_config(None, {**FAST, "sampler": {**FAST["sampler"], "max_steps": 400, "n_tau": 1e3}})
+    b = run_fit(mock_catalog, emu, out, longer)
+    # same data and configuration except the step cap: the chain file is resumed, not restarted
+    assert b.summary["sampler"]["resumed_from"] == 200
+    assert b.summary["sampler"]["n_steps"] > 200
+
+
+def test_prior_outside_domain_refused(tmp_path, smoke_run, mock_catalog, capsys):
+    _, emu = smoke_run
+    cfg = tmp_path / "fit.toml"
+    cfg.write_text('[priors]\nparameters = { q_z = { kind = "uniform", low = 0.5, high = 1.0 } }\n')
+    rc = main(["fit", str(mock_catalog), "--emulator", str(emu), "--config", str(cfg), "--out", str(tmp_path / "o")])
+    assert rc == 1
+    assert "leaves the emulator's domain" in capsys.readouterr().err
+
+
+def test_looser_selection_refused(tmp_path, smoke_run, mock_catalog, capsys):
+    _, emu = smoke_run
+    cfg = tmp_path / "fit.toml"
+    cfg.write_text("[selection]\nr_min = 5.0\n")
+    rc = main(["fit", str(mock_catalog), "--emulator", str(emu), "--config", str(cfg), "--out", str(tmp_path / "o")])
+    assert rc == 1
+    assert "looser than the emulator's selection" in capsys.readouterr().err
+
+
+def test_stars_outside_selection_reported(tmp_path, smoke_run, mock_catalog):
+    """A stricter radius cut excludes the inner stars, each reported with its reason."""
+    _, emu = smoke_run
+    cfg = load_fit_config(None, {**FAST, "selection": {"r_min": 40.0}})
+    out = run_fit(mock_catalog, emu, tmp_path / "fit", cfg)
+    ex = out.summary["stars"]["excluded"]
+    assert ex and all("inside the emulator's cells" in e["reason"] and "[40," in e["reason"] for e in ex)
+    assert out.summary["stars"]["used"] + len(ex) == len(Table.read(mock_catalog))
+
+
+def test_variants_side_by_side(tmp_path, smoke_run, mock_catalog):
+    _, emu = smoke_run
+    v = tmp_path / "variants.toml"
+    v.write_text(
+        '[[variant]]\nname = "baseline"\n\n'
+        '[[variant]]\nname = "slope fixed"\npriors.parameters.slope = { kind = "fixed", value = -0.5 }\n\n'
+        '[[variant]]\nname = "beyond 20 kpc"\nselection.r_min = 20.0\n'
+    )
+    cfgp = tmp_path / "fit.toml"
+    cfgp.write_text("[sampler]\nmax_steps = 300\ncheck_every = 100\nn_tau = 5.0\ntau_rtol = 0.5\n[errors]\nsamples = 8\n")
+    rc = main(["fit", str(mock_catalog), "--emulator", str(emu), "--config", str(cfgp), "--variants", str(v),
+                   "--out", str(tmp_path / "var")])
+    assert rc == 0
+    t = Table.read(tmp_path / "var" / "variants.ecsv")
+    assert list(t["variant"]) == ["baseline", "slope fixed", "beyond 20 kpc"]
+    assert (tmp_path / "var" / "variants.png").is_file()
+    assert (tmp_path / "var" / "slope-fixed" / "summary.json").is_file()
+
+
+def test_bad_variants_file(tmp_path):
+    from swerve.variants import read_variants
+
+    p = tmp_path / "v.toml"
+    p.write_text('[[variant]]\nname = "a"\npriros = {}\n')
+    with pytest.raises(ValueError, match="did you mean 'priors'"):
+        read_variants(p)
