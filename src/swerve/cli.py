@@ -53,7 +53,7 @@ def atomic_write_path(path: Path):
 
 # ------------------------------------------------------------------------------- main -------
 #: subcommand modules under swerve.commands; each has ``add_parser(subparsers)`` that sets ``func``
-COMMANDS = ["galaxy"]
+COMMANDS = ["galaxy", "mock", "train", "info", "fit"]
 
 
 def build_parser() -> argparse.ArgumentParser:
