@@ -8,10 +8,13 @@ True parameters of this invented scenario (also written into the table's meta):
   (the script prints which; the meta records it). The selection stops at 100 kpc, inside
   the region where a potential-flattened halo of these axis ratios keeps a positive density
   (it turns negative beyond ~124 kpc), so both variants are physical.
-* Launch: bounded power law in launch speed, p(v) ∝ v^-0.5 on 600–2200 km/s, radial from
-  3 pc, isotropic; constant ejection rate, flight times uniform on 0–300 Myr.
-* Selection (on the true stars): 10 kpc < r < 100 kpc, outgoing (v_r > 0) and unbound
-  (speed above the local escape speed).
+* Launch: bounded power law in launch speed, p(v) ∝ v^-0.5 on 700–3000 km/s, radial from
+  3 pc, isotropic; constant ejection rate, flight times uniform on 0–300 Myr. (The launch
+  family and its fixed speed range are those of the default emulator, training/default.toml,
+  so the demo lies inside the emulator's model: a fit should recover the truth.)
+* Selection (on the true stars): 10 kpc < r < 100 kpc and outgoing (v_r > 0). No cut on
+  the speed: the likelihood conditions on position only, so a velocity cut would have to be
+  part of the emulator's training selection too.
 * Errors (optimistic future survey), σ(d) = a + b (d / 10 kpc)^p at the true distance d:
   parallax ±0.02 mas (constant); an independent spectrophotometric distance ±10%;
   proper motions ±0.01 mas/yr at 10 kpc growing linearly with distance (a = 0, b = 0.01,
@@ -34,9 +37,9 @@ SEED = 20261201
 N_STARS = 300
 FLATTENING = "density" if "density" in HALO_FLATTENINGS else "potential"
 GALAXY = Galaxy.from_name(halo_flattening=FLATTENING, q_y=1.1, q_z=0.85)
-LAUNCH = BoundedPowerLawSpeed(v_min=600.0, v_max=2200.0, slope=-0.5)
+LAUNCH = BoundedPowerLawSpeed(v_min=700.0, v_max=3000.0, slope=-0.5)
 FLIGHT_TIME_MAX = 300.0  # Myr
-SELECTION = Selection(r_min=10.0, r_max=100.0, outgoing=True, unbound=True)
+SELECTION = Selection(r_min=10.0, r_max=100.0, outgoing=True)
 ERRORS = ErrorModel(parallax=ErrorLaw(0.02), distance_frac=ErrorLaw(0.10),
                     pm=ErrorLaw(0.0, 0.01, 1.0), corr_pmra_pmdec=0.1, vlos=ErrorLaw(5.0))
 
