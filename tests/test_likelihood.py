@@ -181,3 +181,20 @@ def test_kernel_equals_scipy_including_far_tails(rng, a):
     got = like.per_star(np.array([[a]]))[0]
     np.testing.assert_allclose(got, _brute_force(terms, ToyEmulator(), a), rtol=1e-9)
     assert np.all(np.isfinite(got))
+
+
+def test_sampled_posterior_matches_analytic(rng):
+    """End to end: emcee on the likelihood of a Gaussian toy emulator gives the analytic
+    posterior of a (flat prior): mean and standard deviation within Monte Carlo error."""
+    from swerve.sampling import Posterior, resolve_priors, sample_posterior
+
+    cat, _ = _catalog(rng, n=40)
+    terms = prepare_stars(cat, draw_samples(cat, 1, rng), SPEC1)
+    like = Likelihood(ToyEmulator(), terms, SPEC1)
+    a_hat, a_sd = _analytic_posterior(terms)
+    post = Posterior(like, resolve_priors(["a"], ToyEmulator.bounds))
+    res = sample_posterior(post, seed=4, max_steps=8000)
+    assert res.converged
+    n_eff = res.n_walkers * (res.n_steps - res.burn_in) / res.tau[0]
+    assert abs(res.samples[:, 0].mean() - a_hat) < 5 * a_sd / np.sqrt(n_eff)
+    assert res.samples[:, 0].std() == pytest.approx(a_sd, rel=0.08)
