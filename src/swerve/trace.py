@@ -1,0 +1,624 @@
+"""Back-integration of candidate stars: did each one come from the Galactic Centre, and when?
+
+Every error sample of every star (:func:`swerve.catalog.draw_samples`) is integrated
+*backward* in a static Galaxy (:func:`swerve.orbits.integrate`), and per star the weighted
+fraction of paths that pass within a radius R of the Galactic Centre is reported, with the
+flight time and implied launch speed of those paths.
+
+Method
+------
+* **Stopping rule.** Each path is integrated backward until it leaves the sphere r = R
+  after having been inside it (the integrator's outward ``r_stop`` crossing, in the backward
+  direction of time), or until ``max_time``. So a path that passes within R ends right after
+  its *first* (most recent) passage, and its closest approach ``r_min`` and the time of it
+  are those of that passage; a path that never comes within R runs for ``max_time`` and its
+  ``r_min`` is the closest approach within that window. (A grazing passage that enters and
+  leaves the sphere inside one integrator step is still found, as a pericentre between steps,
+  but does not stop the path early: it costs time, and for a bound path ``r_min`` is then the
+  deepest passage within ``max_time``.)
+* **Passes** (origin): ``r_min < R``. **Flight time**: the time since the closest approach,
+  ``-t_r_min`` (Myr; the integrator locates the pericentre between steps with its own
+  accuracy). For a star launched at 3 pc this exceeds the time since launch by the time
+  from the centre to 3 pc, ~0.003 Myr at 1000 km/s.
+* **Launch speed** (implied): energy conservation in the static Galaxy from the present
+  state, ``v_launch^2 = v^2 + 2 [Phi(x) - Phi(r_launch n)]`` with ``r_launch`` = 3 pc
+  (common practice) and ``n`` the unit vector of the present position. It needs neither
+  the pericentre state nor an accurate passage through the singular point mass; the
+  direction matters only through the non-spherical components, whose potential varies by
+  ~1e-6 of itself over a 3 pc sphere in the default Galaxy (under 1e-3 km/s in speed).
+  It is the speed the path would have at 3 pc from the centre, whether or not it passes
+  that close.
+* **Unbound**: the present speed exceeds the local escape speed ``sqrt(-2 Phi(x))`` of the
+  (untruncated) Galaxy.
+* **Failures.** A path traced back to within ``r_launch`` of the centre can pass arbitrarily
+  close to the point mass (a star launched exactly radially, as in a noiseless mock), where
+  the integrator may stop with a step-size underflow. Such a path has reached the centre and
+  is kept (its ``r_min`` and ``t_r_min`` were located before the failure); any other failed
+  path is left out of every estimate and counted in ``n_failed``.
+
+Weights
+-------
+The samples are draws from each star's measurement distribution, read as a distribution of
+its true observables. For expectations over the star's posterior of its true observables
+(distance, proper motions, line-of-sight velocity), with priors flat in the observables
+except for the distance prior, the importance weights are the distance-prior weights
+``exp(log_prior)`` of :class:`swerve.catalog.ErrorSamples`, normalised per star: 1 for
+stars with a distance measurement and under ``distance_prior="none"``, ``pi(d) d^2`` for
+parallax stars under a volume prior. The Jacobian ``J(d) = (kappa d)^2`` in
+``ErrorSamples.log_weight`` is *not* used: it converts a density over the observables into
+one over the Galactocentric velocity, which a likelihood of a velocity density needs; here
+it would amount to a prior flat in velocity rather than in the observables, and would tilt
+every star's distance posterior by d^2.
+
+Quantiles are weighted (Hazen's definition, see :func:`weighted_quantile`); the 16-84%
+interval is reported as ``*_lo`` and ``*_hi``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import __version__
+from .orbits import (
+    DEFAULT_ATOL,
+    DEFAULT_RTOL,
+    STATUS_NON_FINITE,
+    STATUS_OK,
+    STATUS_STOPPED,
+    OrbitFailureWarning,
+    integrate,
+)
+from .units import to_internal
+
+__all__ = [
+    "DEFAULT_CHUNK",
+    "DEFAULT_LAUNCH_RADIUS",
+    "DEFAULT_MAX_TIME",
+    "DEFAULT_RADIUS",
+    "TRACE_COLUMNS",
+    "TraceResult",
+    "trace_catalog",
+    "trace_orbits",
+    "trace_plot",
+    "trace_samples",
+    "trace_summary",
+    "weighted_quantile",
+    "write_trace_table",
+]
+
+#: Default radius of the origin test, kpc.
+DEFAULT_RADIUS = 1.0
+#: Default longest backward integration, Myr.
+DEFAULT_MAX_TIME = 1000.0
+#: Radius at which the launch speed is evaluated, kpc (3 pc, common practice).
+DEFAULT_LAUNCH_RADIUS = 0.003
+#: Orbits per integration batch (bounds memory; one progress update each).
+DEFAULT_CHUNK = 8192
+
+#: Output columns: name -> (unit, description).
+TRACE_COLUMNS: dict[str, tuple[str, str]] = {
+    "id": ("", "star identifier"),
+    "ra": ("deg", "ICRS right ascension"),
+    "dec": ("deg", "ICRS declination"),
+    "distance": ("kpc", "heliocentric distance, weighted median over the samples"),
+    "r_gc": ("kpc", "present Galactocentric radius, weighted median"),
+    "v_gc": ("km / s", "present Galactocentric speed, weighted median"),
+    "p_origin": ("", "weighted fraction of the paths that pass within the radius of the Galactic Centre"),
+    "n_pass": ("", "number of samples whose path passes within the radius"),
+    "t_flight": ("Myr", "time since the closest approach of the passing paths, weighted median"),
+    "t_flight_lo": ("Myr", "16th percentile of t_flight"),
+    "t_flight_hi": ("Myr", "84th percentile of t_flight"),
+    "v_launch": ("km / s", "implied speed at the launch radius (energy conservation) of the passing paths, median"),
+    "v_launch_lo": ("km / s", "16th percentile of v_launch"),
+    "v_launch_hi": ("km / s", "84th percentile of v_launch"),
+    "p_unbound": ("", "weighted fraction of samples faster than the local escape speed"),
+    "r_min": ("kpc", "closest approach to the Galactic Centre (first passage or within max_time), weighted median"),
+    "ess": ("", "Kish effective sample size of the weights"),
+    "n_failed": ("", "samples whose integration failed (left out)"),
+}
+
+
+# --------------------------------------------------------------------------------------------
+# statistics
+
+
+def weighted_quantile(x, w, q) -> np.ndarray:
+    """Weighted quantiles of ``x`` with weights ``w`` (Hazen's definition).
+
+    The weighted empirical CDF is placed at the middle of each point's weight,
+    ``F_i = (W_i - w_i / 2) / W`` (``W_i`` the running sum over sorted ``x``), and the
+    quantile is linearly interpolated in it (clamped at the ends). With equal weights this is
+    ``numpy.quantile(x, q, method="hazen")``.
+
+    Parameters
+    ----------
+    x : array (m,)
+    w : array (m,), non-negative, positive sum
+    q : float or array of floats in [0, 1]
+
+    Returns
+    -------
+    ndarray of the shape of ``q``; NaN when ``x`` is empty or the weights sum to zero.
+    """
+    x = np.asarray(x, dtype=float).ravel()
+    w = np.asarray(w, dtype=float).ravel()
+    q = np.asarray(q, dtype=float)
+    if x.shape != w.shape:
+        raise ValueError(f"weighted_quantile: x and w differ in shape, {x.shape} vs {w.shape}")
+    if np.any(w < 0) or not np.all(np.isfinite(w)):
+        raise ValueError("weighted_quantile: weights must be finite and non-negative")
+    if np.any((q < 0) | (q > 1)):
+        raise ValueError("weighted_quantile: q must lie in [0, 1]")
+    keep = w > 0
+    x, w = x[keep], w[keep]
+    if x.size == 0:
+        return np.full(q.shape, np.nan)
+    order = np.argsort(x, kind="stable")
+    xs, ws = x[order], w[order]
+    cdf = (np.cumsum(ws) - 0.5 * ws) / ws.sum()
+    return np.interp(q, cdf, xs)
+
+
+def _wmedian(x, w):
+    return float(weighted_quantile(x, w, 0.5))
+
+
+def _positive(value, kind, name):
+    v = to_internal(value, kind, name)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}: expected a positive finite number, got {value!r}")
+    return float(v)
+
+
+# --------------------------------------------------------------------------------------------
+# result
+
+
+@dataclass
+class TraceResult:
+    """Per-star results of a back-integration, and the per-sample values behind them.
+
+    Per-star arrays have shape (n,); per-sample arrays (n, k). Units: kpc, km/s, Myr.
+
+    Attributes
+    ----------
+    ids : array (n,)
+    ra, dec : arrays (n,), deg, or None when traced from plain arrays
+    distance : array (n,) or None
+        Heliocentric distance, weighted median (kpc).
+    r_gc, v_gc : arrays (n,)
+        Present Galactocentric radius and speed, weighted medians.
+    p_origin : array (n,)
+        Weighted fraction of the usable paths with ``r_min < radius``.
+    n_pass : int array (n,)
+    t_flight, t_flight_lo, t_flight_hi : arrays (n,)
+        Weighted median and 16th/84th percentiles of the flight time of the passing paths
+        (NaN where none passes).
+    v_launch, v_launch_lo, v_launch_hi : arrays (n,)
+        The same for the implied launch speed.
+    p_unbound : array (n,)
+    r_min : array (n,)
+        Weighted median of the closest approach over the usable paths.
+    ess : array (n,)
+    n_failed : int array (n,)
+    weights : array (n, k)
+        Normalised weights (0 for left-out samples; each row sums to 1 over usable samples).
+    sample_r_min, sample_t_flight, sample_v_launch : arrays (n, k)
+        Closest approach (kpc), time since it (Myr) and implied launch speed (km/s).
+    sample_unbound, sample_pass, usable : bool arrays (n, k)
+    meta : dict
+        Settings, the Galaxy, and provenance (JSON-safe).
+    """
+
+    ids: np.ndarray
+    ra: np.ndarray | None
+    dec: np.ndarray | None
+    distance: np.ndarray | None
+    r_gc: np.ndarray
+    v_gc: np.ndarray
+    p_origin: np.ndarray
+    n_pass: np.ndarray
+    t_flight: np.ndarray
+    t_flight_lo: np.ndarray
+    t_flight_hi: np.ndarray
+    v_launch: np.ndarray
+    v_launch_lo: np.ndarray
+    v_launch_hi: np.ndarray
+    p_unbound: np.ndarray
+    r_min: np.ndarray
+    ess: np.ndarray
+    n_failed: np.ndarray
+    weights: np.ndarray
+    sample_r_min: np.ndarray
+    sample_t_flight: np.ndarray
+    sample_v_launch: np.ndarray
+    sample_unbound: np.ndarray
+    sample_pass: np.ndarray
+    usable: np.ndarray
+    meta: dict = field(default_factory=dict)
+
+    @property
+    def n(self) -> int:
+        """Number of stars."""
+        return int(self.p_origin.shape[0])
+
+    def to_table(self):
+        """The per-star results as an :class:`astropy.table.Table` with units, descriptions
+        and :attr:`meta` (the columns of :data:`TRACE_COLUMNS`)."""
+        from astropy.table import Table
+
+        t = Table()
+        n = self.n
+        nan = np.full(n, np.nan)
+        for name, (unit, desc) in TRACE_COLUMNS.items():
+            value = getattr(self, name if name != "id" else "ids")
+            if value is None:
+                value = nan
+            t[name] = np.asarray(value)
+            if unit:
+                t[name].unit = unit
+            t[name].description = desc
+        t.meta.update(_jsonable(self.meta))
+        return t
+
+
+def _jsonable(obj):
+    return json.loads(json.dumps(obj, default=lambda o: o.tolist() if hasattr(o, "tolist") else str(o)))
+
+
+# --------------------------------------------------------------------------------------------
+# tracing
+
+
+def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_time=DEFAULT_MAX_TIME,
+                 launch_radius=DEFAULT_LAUNCH_RADIUS, rtol=DEFAULT_RTOL, atol=DEFAULT_ATOL,
+                 chunk=DEFAULT_CHUNK, progress=None, ids=None) -> TraceResult:
+    """Trace samples of stars backward in a Galaxy (plain arrays; see the module docstring).
+
+    Parameters
+    ----------
+    galaxy : swerve.galaxy.Galaxy
+    pos : array (n, k, 3), kpc
+        Present Galactocentric positions: k samples of each of n stars.
+    vel : array (n, k, 3), km/s
+        Present Galactocentric velocities.
+    weights : array (n, k), optional
+        Non-negative importance weights of the samples (normalised per star here); default
+        equal weights.
+    radius : float or Quantity ['length']
+        A path "passes" (is consistent with a Galactic-Centre origin) when its closest
+        approach is below this radius, kpc (default 1).
+    max_time : float or Quantity ['time']
+        Longest backward integration, Myr (default 1000).
+    launch_radius : float or Quantity ['length']
+        Radius at which the implied launch speed is evaluated, kpc (default 3 pc).
+    rtol, atol : float
+        Integrator tolerances (:func:`swerve.orbits.integrate`).
+    chunk : int
+        Orbits per integration batch.
+    progress : callable, optional
+        Called as ``progress(done, total)`` (orbits) after each batch.
+    ids : array (n,), optional
+        Star identifiers (default 0..n-1).
+
+    Returns
+    -------
+    TraceResult
+        With ``ra``, ``dec`` and ``distance`` None.
+    """
+    pos = np.asarray(to_internal(pos, "length", "pos"), dtype=float)
+    vel = np.asarray(to_internal(vel, "velocity", "vel"), dtype=float)
+    if pos.ndim != 3 or pos.shape[2] != 3:
+        raise ValueError(f"pos: expected an array of shape (n, k, 3), got shape {pos.shape}")
+    if vel.shape != pos.shape:
+        raise ValueError(f"vel: expected shape {pos.shape} like pos, got {vel.shape}")
+    n, k = pos.shape[:2]
+    if n == 0 or k == 0:
+        raise ValueError(f"pos: expected at least one star and one sample, got shape {pos.shape}")
+    if not (np.all(np.isfinite(pos)) and np.all(np.isfinite(vel))):
+        raise ValueError("pos, vel: expected finite values, got NaN or infinity")
+    if weights is None:
+        weights = np.ones((n, k))
+    weights = np.asarray(weights, dtype=float)
+    if weights.shape != (n, k):
+        raise ValueError(f"weights: expected shape ({n}, {k}), got {weights.shape}")
+    if not np.all(np.isfinite(weights)) or np.any(weights < 0):
+        raise ValueError("weights: expected finite non-negative values")
+    radius = _positive(radius, "length", "radius")
+    max_time = _positive(max_time, "time", "max_time")
+    launch_radius = _positive(launch_radius, "length", "launch_radius")
+    if isinstance(chunk, bool) or not isinstance(chunk, (int, np.integer)) or chunk < 1:
+        raise ValueError(f"chunk: expected a positive integer, got {chunk!r}")
+    ids = np.arange(n) if ids is None else np.asarray(ids)
+    if ids.shape != (n,):
+        raise ValueError(f"ids: expected {n} identifiers, got shape {ids.shape}")
+
+    flat_pos = pos.reshape(-1, 3)
+    flat_vel = vel.reshape(-1, 3)
+    m = flat_pos.shape[0]
+    r_min = np.empty(m)
+    t_min = np.empty(m)
+    r_max = np.empty(m)
+    status = np.empty(m, dtype=np.int64)
+    for start in range(0, m, int(chunk)):
+        stop = min(start + int(chunk), m)
+        res = integrate(galaxy, flat_pos[start:stop], flat_vel[start:stop], -max_time, r_stop=radius,
+                        rtol=rtol, atol=atol, check_density=False, on_failure="ignore")
+        r_min[start:stop] = res.r_min
+        t_min[start:stop] = res.t_r_min
+        r_max[start:stop] = res.r_max
+        status[start:stop] = res.status
+        # A Galaxy of zero-mass components has Phi = 0 everywhere, and the integrator's relative
+        # energy error |dE| / |Phi(x0)| is then 0/0, flagged "non-finite": the path is fine.
+        massless = ((res.status == STATUS_NON_FINITE) & (galaxy.potential(flat_pos[start:stop]) == 0.0)
+                    & np.all(np.isfinite(res.pos), axis=1) & np.all(np.isfinite(res.vel), axis=1))
+        status[start:stop][massless] = STATUS_OK
+        if progress is not None:
+            progress(stop, m)
+    galaxy.check_domain(r_max, what="traced paths")
+
+    ok = status <= STATUS_STOPPED
+    reached_centre = ~ok & (r_min <= launch_radius) & np.isfinite(t_min)
+    usable = (ok | reached_centre).reshape(n, k)
+    r_min = r_min.reshape(n, k)
+    t_flight = -t_min.reshape(n, k)
+    passes = usable & (r_min < radius)
+
+    # present-state quantities
+    phi = galaxy.potential(flat_pos)
+    r_now = np.linalg.norm(flat_pos, axis=1)
+    unit = np.where(r_now[:, None] > 0, flat_pos / np.where(r_now > 0, r_now, 1.0)[:, None],
+                    np.array([1.0, 0.0, 0.0]))
+    phi_launch = galaxy.potential(launch_radius * unit)
+    speed2 = np.sum(flat_vel**2, axis=1)
+    with np.errstate(invalid="ignore"):
+        v_launch = np.sqrt(speed2 + 2.0 * (phi - phi_launch)).reshape(n, k)
+    unbound = (speed2 > np.maximum(-2.0 * phi, 0.0)).reshape(n, k)
+    r_now = r_now.reshape(n, k)
+    speed = np.sqrt(speed2).reshape(n, k)
+
+    w = np.where(usable, weights, 0.0)
+    sums = w.sum(axis=1, keepdims=True)
+    w = np.divide(w, sums, out=np.zeros_like(w), where=sums > 0)
+    out = {name: np.full(n, np.nan) for name in (
+        "r_gc", "v_gc", "p_origin", "t_flight", "t_flight_lo", "t_flight_hi", "v_launch",
+        "v_launch_lo", "v_launch_hi", "p_unbound", "r_min", "ess")}
+    qs = [0.5, 0.16, 0.84]
+    for i in range(n):
+        wi = w[i]
+        if not np.any(wi > 0):
+            continue
+        out["r_gc"][i] = _wmedian(r_now[i], wi)
+        out["v_gc"][i] = _wmedian(speed[i], wi)
+        out["r_min"][i] = _wmedian(r_min[i][usable[i]], wi[usable[i]])
+        out["p_unbound"][i] = float(np.sum(wi[unbound[i]]))
+        out["ess"][i] = 1.0 / float(np.sum(wi * wi))
+        p = passes[i]
+        out["p_origin"][i] = float(np.sum(wi[p]))
+        if np.any(wi[p] > 0):
+            tq = weighted_quantile(t_flight[i][p], wi[p], qs)
+            vq = weighted_quantile(v_launch[i][p], wi[p], qs)
+            out["t_flight"][i], out["t_flight_lo"][i], out["t_flight_hi"][i] = tq
+            out["v_launch"][i], out["v_launch_lo"][i], out["v_launch_hi"][i] = vq
+    n_failed = (~usable).sum(axis=1)
+    if n_failed.sum():
+        warnings.warn(
+            f"trace: {int(n_failed.sum())} of {m} paths failed to integrate and are left out "
+            f"(in {int(np.sum(n_failed > 0))} stars; see the n_failed column)", OrbitFailureWarning, stacklevel=2)
+    meta = {
+        "swerve_trace": "backward integration of candidate stars made by swerve.trace",
+        "swerve_version": __version__,
+        "galaxy": galaxy.to_dict(),
+        "radius_kpc": radius,
+        "max_time_myr": max_time,
+        "launch_radius_kpc": launch_radius,
+        "samples_per_star": int(k),
+        "rtol": float(rtol),
+        "atol": float(atol),
+        "n_reached_centre_after_failure": int(reached_centre.sum()),
+        "quantiles": "weighted, Hazen definition; *_lo/*_hi are the 16th/84th percentiles",
+    }
+    return TraceResult(
+        ids=ids, ra=None, dec=None, distance=None,
+        r_gc=out["r_gc"], v_gc=out["v_gc"], p_origin=out["p_origin"], n_pass=passes.sum(axis=1),
+        t_flight=out["t_flight"], t_flight_lo=out["t_flight_lo"], t_flight_hi=out["t_flight_hi"],
+        v_launch=out["v_launch"], v_launch_lo=out["v_launch_lo"], v_launch_hi=out["v_launch_hi"],
+        p_unbound=out["p_unbound"], r_min=out["r_min"], ess=out["ess"], n_failed=n_failed,
+        weights=w, sample_r_min=r_min, sample_t_flight=t_flight, sample_v_launch=v_launch,
+        sample_unbound=unbound, sample_pass=passes, usable=usable, meta=meta,
+    )
+
+
+def trace_samples(galaxy, samples, **kwargs) -> TraceResult:
+    """Trace the error samples of a catalog (:func:`swerve.catalog.draw_samples`) backward.
+
+    The weights are the distance-prior weights ``exp(samples.log_prior)``, normalised per
+    star (module docstring, "Weights"). Keyword arguments as :func:`trace_orbits`.
+
+    Returns
+    -------
+    TraceResult
+        With ``ra``, ``dec`` and ``distance`` (weighted median of the sampled heliocentric
+        distances) filled in, and the solar parameters and distance prior in ``meta``.
+    """
+    from .catalog import ErrorSamples
+
+    if not isinstance(samples, ErrorSamples):
+        raise ValueError(f"samples: expected swerve.catalog.ErrorSamples, got {type(samples).__name__}")
+    lp = samples.log_prior - samples.log_prior.max(axis=1, keepdims=True)
+    weights = np.exp(lp)
+    res = trace_orbits(galaxy, samples.position, samples.velocity, weights, ids=samples.ids, **kwargs)
+    res.ra = np.asarray(samples.ra, dtype=float)
+    res.dec = np.asarray(samples.dec, dtype=float)
+    res.distance = np.array([_wmedian(samples.distance[i][res.usable[i]], res.weights[i][res.usable[i]])
+                             if res.usable[i].any() else np.nan for i in range(samples.n)])
+    res.meta["weights"] = ("distance-prior weights exp(log_prior) of swerve.catalog.draw_samples, "
+                           "normalised per star (no velocity Jacobian)")
+    res.meta["distance_prior"] = samples.distance_prior
+    res.meta["samples_settings"] = samples.settings
+    res.meta["solar"] = samples.settings.get("solar")
+    return res
+
+
+def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prior="none", solar=None,
+                  length_scale=10.0, max_distance=300.0, **kwargs) -> TraceResult:
+    """Draw ``k`` error samples of every star of ``catalog`` and trace them backward.
+
+    Parameters
+    ----------
+    catalog : swerve.catalog.Catalog
+    galaxy : swerve.galaxy.Galaxy, optional
+        Default: ``Galaxy.default()``.
+    k : int
+        Samples per star.
+    rng : numpy.random.Generator or int
+        The only source of randomness (an int is a seed, recorded in ``meta``).
+    distance_prior, solar, length_scale, max_distance
+        As :func:`swerve.catalog.draw_samples`.
+    **kwargs
+        As :func:`trace_orbits` (radius, max_time, launch_radius, rtol, atol, chunk, progress).
+
+    Returns
+    -------
+    TraceResult
+
+    Examples
+    --------
+    >>> from swerve.catalog import read_catalog
+    >>> res = trace_catalog(read_catalog("examples/demo.ecsv"), k=50, rng=1)  # doctest: +SKIP
+    >>> res.to_table()["p_origin"]  # doctest: +SKIP
+    """
+    from .catalog import draw_samples
+    from .galaxy import Galaxy
+
+    seed = None
+    if isinstance(rng, (int, np.integer)) and not isinstance(rng, bool):
+        seed = int(rng)
+        rng = np.random.default_rng(seed)
+    if not isinstance(rng, np.random.Generator):
+        raise ValueError("rng: expected a numpy Generator or an integer seed")
+    galaxy = Galaxy.default() if galaxy is None else galaxy
+    samples = draw_samples(catalog, k, rng, distance_prior=distance_prior, solar=solar,
+                           length_scale=length_scale, max_distance=max_distance)
+    res = trace_samples(galaxy, samples, **kwargs)
+    res.meta["seed"] = seed if seed is not None else "not recorded (a Generator was passed)"
+    res.meta["catalog"] = str(catalog.source)
+    return res
+
+
+# --------------------------------------------------------------------------------------------
+# outputs
+
+
+def _chmod_default(path):
+    """Give a temporary file (mkstemp: mode 0600) the permissions of a normally created file."""
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(path, 0o666 & ~mask)
+
+
+def _atomic(path, write):
+    """Call ``write(tmp)`` for a temporary file beside ``path`` (same suffix), then rename it."""
+    import tempfile
+
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(folder):
+        raise ValueError(f"{path!r}: folder {folder} does not exist")
+    fd, tmp = tempfile.mkstemp(prefix=".trace.", suffix=os.path.splitext(path)[1], dir=folder)
+    os.close(fd)
+    try:
+        write(tmp)
+        _chmod_default(tmp)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def write_trace_table(result: TraceResult, path) -> None:
+    """Write the per-star table as ECSV, atomically (temporary file beside it, then rename)."""
+    if not os.fspath(path).lower().endswith(".ecsv"):
+        raise ValueError(f"out: {os.fspath(path)!r}: expected a file name ending in .ecsv")
+    table = result.to_table()
+    _atomic(path, lambda tmp: table.write(tmp, format="ascii.ecsv", overwrite=True))
+
+
+def trace_plot(result: TraceResult, path) -> None:
+    """Flight time against heliocentric distance, coloured by the origin probability.
+
+    Stars with at least one passing path are drawn with their 16-84% flight-time interval;
+    the number of stars with none is written in the corner. Matplotlib, Agg backend; the
+    format comes from the extension of ``path``, which is written atomically.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    d = result.distance if result.distance is not None else result.r_gc
+    has = np.isfinite(result.t_flight)
+    fig, ax = plt.subplots(figsize=(6.4, 4.6), constrained_layout=True)
+    if has.any():
+        t = result.t_flight[has]
+        yerr = [t - result.t_flight_lo[has], result.t_flight_hi[has] - t]
+        ax.errorbar(d[has], t, yerr=yerr, fmt="none", ecolor="0.6", elinewidth=0.7, zorder=1)
+        sc = ax.scatter(d[has], t, c=result.p_origin[has], cmap="viridis", vmin=0.0, vmax=1.0, s=22,
+                        edgecolors="k", linewidths=0.3, zorder=2)
+        fig.colorbar(sc, ax=ax, label=f"P(path within {result.meta.get('radius_kpc', DEFAULT_RADIUS):g} kpc of the GC)")
+    n_none = int(np.sum(~has))
+    ax.text(0.02, 0.97, f"{int(has.sum())} stars with a passing path; {n_none} with none (not shown)",
+            transform=ax.transAxes, va="top", fontsize=8)
+    ax.set_xlabel("heliocentric distance [kpc]" if result.distance is not None else "Galactocentric radius [kpc]")
+    ax.set_ylabel("flight time since closest approach [Myr]")
+    ax.grid(alpha=0.3)
+    galaxy = result.meta.get("galaxy", {}).get("name", "")
+    ax.set_title(f"swerve trace ({galaxy}, {result.meta.get('samples_per_star', '?')} samples per star)", fontsize=9)
+    _atomic(path, lambda tmp: fig.savefig(tmp, dpi=120))
+    plt.close(fig)
+
+
+def trace_summary(result: TraceResult, top: int = 20) -> str:
+    """A terminal summary: the ``top`` stars by origin probability, then counts."""
+    if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 0:
+        raise ValueError(f"top: expected a non-negative integer, got {top!r}")
+    meta = result.meta
+    lines = [(
+        f"Traced {result.n} stars x {meta.get('samples_per_star')} samples back for up to "
+        f"{meta.get('max_time_myr'):g} Myr in Galaxy {meta.get('galaxy', {}).get('name')}; "
+        f"origin: a path within {meta.get('radius_kpc'):g} kpc of the Galactic Centre."
+    )]
+    order = np.argsort(-np.nan_to_num(result.p_origin, nan=-1.0), kind="stable")
+    shown = order[: int(top)]
+    if len(shown):
+        lines.append(f"  {'id':<14} {'d [kpc]':>8} {'P_origin':>8} {'t_flight [Myr]':>22} "
+                     f"{'v_launch [km/s]':>22} {'P_unbound':>9} {'r_min [kpc]':>11}")
+
+        def _iv(m, lo, hi, fmt):
+            if not np.isfinite(m):
+                return "--"
+            return f"{m:{fmt}} ({lo:{fmt}}-{hi:{fmt}})"
+
+        for i in shown:
+            d = result.distance[i] if result.distance is not None else np.nan
+            lines.append(
+                f"  {str(result.ids[i])[:14]:<14} {d:8.2f} {result.p_origin[i]:8.3f} "
+                f"{_iv(result.t_flight[i], result.t_flight_lo[i], result.t_flight_hi[i], '.1f'):>22} "
+                f"{_iv(result.v_launch[i], result.v_launch_lo[i], result.v_launch_hi[i], '.0f'):>22} "
+                f"{result.p_unbound[i]:9.3f} {result.r_min[i]:11.2f}")
+        if result.n > len(shown):
+            lines.append(f"  ... {result.n - len(shown)} more stars in the table")
+    p = np.nan_to_num(result.p_origin)
+    lines.append(
+        f"  P_origin > 0.5: {int(np.sum(p > 0.5))} stars; > 0.1: {int(np.sum(p > 0.1))}; = 0: "
+        f"{int(np.sum(p == 0))}.  P_unbound > 0.5: {int(np.sum(np.nan_to_num(result.p_unbound) > 0.5))} stars.")
+    n_failed = int(np.sum(result.n_failed))
+    if n_failed:
+        lines.append(f"  {n_failed} paths failed to integrate (left out; column n_failed).")
+    return "\n".join(lines)
