@@ -282,3 +282,15 @@ def test_failures_are_flagged(galaxy, kepler):
     # starting at the singularity: non-finite energy, flagged at once
     res = orbits.integrate(kepler, [[0.0, 0.0, 0.0]], [[1.0, 0.0, 0.0]], 1.0, on_failure="ignore")
     assert res.status[0] == orbits.STATUS_NON_FINITE
+
+
+def test_massless_galaxy_gives_straight_lines():
+    """Every mass zero: free motion, x(t) = x0 + v t (analytic), and no orbit is flagged."""
+    g = Galaxy.default(m_bh=0.0, m_bulge=0.0, m_disk=0.0, m_halo=0.0)
+    pos0 = np.array([[8.0, 1.0, -2.0], [0.003, 0.0, 0.0]])
+    vel0 = np.array([[100.0, -50.0, 30.0], [1500.0, 0.0, 0.0]])
+    res = orbits.integrate(g, pos0, vel0, 100.0, check_density=False)
+    assert np.all(res.ok)
+    t = 100.0 / units.TIME_UNIT_MYR
+    np.testing.assert_allclose(res.pos, pos0 + vel0 * t, rtol=1e-12)
+    assert np.all(res.energy_error < 1e-12)

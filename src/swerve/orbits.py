@@ -567,7 +567,9 @@ def integrate_orbit_kernel(kinds, pars, aux, y0, t_end, t_out, order, n_out, r_s
                 status = STATUS_STEP_UNDERFLOW
                 break
     e1 = 0.5 * (vx * vx + vy * vy + vz * vz) + kernels.potential(kinds, pars, aux, x, y, z)
-    de = abs(e1 - e0) / abs(phi0)
+    # relative to |Phi(x0)|; in a massless Galaxy (Phi = 0) relative to the kinetic energy
+    scale = abs(phi0) if phi0 != 0.0 else max(abs(e0), 1e-300)
+    de = abs(e1 - e0) / scale
     if status <= STATUS_STOPPED and not math.isfinite(de):
         status = STATUS_NON_FINITE
     y_final[0] = x
@@ -636,7 +638,8 @@ class OrbitResult:
     n_steps, n_rejected, n_force : int arrays (n,)
         Accepted steps, rejected steps, force evaluations.
     energy_error : array (n,)
-        ``|E(t_final) - E(0)| / |Phi(x0)|``.
+        ``|E(t_final) - E(0)| / |Phi(x0)|`` (divided by ``|E(0)|`` instead where Φ(x0) = 0, as in
+        a massless Galaxy).
     r_max, r_min : arrays (n,)
         Largest and smallest galactocentric radius reached (kpc), located between steps on the
         dense output.
