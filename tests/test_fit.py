@@ -139,3 +139,18 @@ def test_bad_variants_file(tmp_path):
     p.write_text('[[variant]]\nname = "a"\npriros = {}\n')
     with pytest.raises(ValueError, match="did you mean 'priors'"):
         read_variants(p)
+
+
+def test_malformed_catalog_lists_every_problem_and_writes_nothing(tmp_path, smoke_run, capsys):
+    _, emu = smoke_run
+    bad = tmp_path / "bad.csv"
+    bad.write_text("id,ra,dec,distance,distance_err,pmra,pmra_err,pmdec,pmdec_err,vlos,vlos_err\n"
+                   "a,400,0,50,5,0.1,-0.05,0.1,0.05,500,5\n"
+                   "a,10,95,50,5,0.1,0.05,nan,0.05,500,5\n")
+    out = tmp_path / "fit"
+    assert main(["fit", str(bad), "--emulator", str(emu), "--out", str(out)]) == 1
+    err = capsys.readouterr().err
+    for fragment in ("column 'ra'", "column 'pmra_err'", "unique id", "column 'dec'", "column 'pmdec'"):
+        assert fragment in err
+    assert "Traceback" not in err
+    assert not out.exists()

@@ -53,7 +53,7 @@ def atomic_write_path(path: Path):
 
 # ------------------------------------------------------------------------------- main -------
 #: subcommand modules under swerve.commands; each has ``add_parser(subparsers)`` that sets ``func``
-COMMANDS = ["galaxy", "mock", "train", "info", "fit"]
+COMMANDS = ["galaxy", "mock", "train", "info", "fit", "validate", "forecast", "trace"]
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -88,8 +88,13 @@ def main(argv=None) -> int:
             warnings.showwarning = _show_warning
             return int(args.func(args) or 0)
     except (CommandError, ValueError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:
-        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        print(f"swerve {args.command}: error: {msg}", file=sys.stderr)
+        lines = str(exc).splitlines() or [type(exc).__name__]
+        if not getattr(exc, "problems", None):  # a catalog's report lists every problem, one per line
+            lines = lines[:1]
+        for line in lines:
+            print(f"swerve {args.command}: error: {line}", file=sys.stderr)
+        if len(lines) > 1:
+            print(f"swerve {args.command}: {len(lines)} problems; nothing was written", file=sys.stderr)
         return EXIT_ERROR
     except KeyboardInterrupt:
         print(f"swerve {args.command}: interrupted", file=sys.stderr)

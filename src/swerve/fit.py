@@ -183,7 +183,6 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
 
     t_start = time.perf_counter()
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
     emu = load(emulator_path)
     meta = emu.metadata or {}
     if "summaries" not in meta:
@@ -208,6 +207,7 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                            units=parse_units(c["units"] or None), drop_invalid=c["drop_invalid"])
     for p in catalog.problems:
         notes.append(f"dropped: {p}")
+    out_dir.mkdir(parents=True, exist_ok=True)  # only once the inputs are known to be good
     t0 = time.perf_counter()
     terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
     t_terms = time.perf_counter() - t0
