@@ -1,0 +1,64 @@
+"""``swerve validate``: check an emulator against held-out full simulations (DESIGN.md §7).
+
+Writes to ``--out``: ``validation.json`` (sections ``settings``, ``accuracy``, ``calibration``,
+``power``; layout in :func:`swerve.validation.run_validation`), ``accuracy.png``,
+``accuracy_map.png``, ``calibration.png``, ``power.png`` and ``power.md`` (the power table).
+"""
+
+from __future__ import annotations
+
+from ..cli import EXIT_OK, CommandError
+
+
+def add_parser(sub):
+    p = sub.add_parser(
+        "validate",
+        help="check an emulator against held-out full simulations: accuracy, calibration, power",
+        description=(
+            "Validate an emulator against a held-out run (swerve train CONFIG --out DIR --held-out): "
+            "emulator accuracy (emulated vs simulated summaries normalised by both uncertainties), "
+            "simulation-based calibration (rank histograms and 68%%/95%% coverage with binomial error bars, "
+            "from catalogs drawn from the held-out full simulations) and power against sample size "
+            "(how often the posterior median of q_z, rounded to a grid, is the true value), side by side "
+            "with the KS-test baseline. Settings come from a TOML file (--config; see --print-config); "
+            "the defaults are the full run, which takes hours: training/validate-ci.toml is a small one."
+        ),
+    )
+    p.add_argument("--emulator", metavar="PATH", help="emulator folder (made by swerve train)")
+    p.add_argument("--held-out", metavar="RUN_DIR", help="held-out run folder of the same training configuration")
+    p.add_argument("--out", metavar="REPORT_DIR", help="report folder (created)")
+    p.add_argument("--config", metavar="VALIDATE.toml", help="validation settings (default: the full run)")
+    p.add_argument("--print-config", action="store_true", help="print the settings template (with --config's values) and exit")
+    p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes for the fits (overrides n_jobs)")
+    p.add_argument("--seed", type=int, default=None, help="master seed (overrides seed)")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    from ..config import load_config, template
+    from ..validation import VALIDATE_SCHEMA, load_validate_config, run_validation
+
+    if args.print_config:
+        print(template(VALIDATE_SCHEMA, load_config(args.config, VALIDATE_SCHEMA) if args.config else None))
+        return EXIT_OK
+    for opt, val in (("--emulator", args.emulator), ("--held-out", args.held_out), ("--out", args.out)):
+        if not val:
+            raise CommandError(f"{opt} is required")
+    cfg = load_validate_config(args.config)
+    if args.jobs is not None:
+        if args.jobs < 1:
+            raise CommandError(f"--jobs {args.jobs}: expected a positive number of workers")
+        cfg["n_jobs"] = args.jobs
+    if args.seed is not None:
+        if args.seed < 0:
+            raise CommandError(f"--seed {args.seed}: expected a non-negative integer")
+        cfg["seed"] = args.seed
+    doc = run_validation(args.emulator, args.held_out, args.out, cfg, log=lambda m: print(f"swerve validate: {m}"))
+    cal = doc["calibration"]
+    if "pass" in cal:
+        print(f"swerve validate: calibration {'PASS' if cal['pass'] else 'FAIL'} "
+              f"({cal['n_fitted']} catalogs; " + ", ".join(
+                  f"{n}: 68% {v['coverage68']['observed']:.2f}, 95% {v['coverage95']['observed']:.2f}, "
+                  f"ranks p = {v['rank_test']['chi2_p']:.2g}" for n, v in cal["parameters"].items()) + ")")
+    print(f"swerve validate: report in {args.out} ({doc['settings']['timing_s']['total']:.0f} s)")
+    return EXIT_OK
