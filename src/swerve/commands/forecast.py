@@ -13,7 +13,7 @@ def add_parser(sub):
         description=(
             "Forecast for survey planning: for each sample size, fit synthetic catalogs drawn from the full "
             "simulation at a true halo (one trajectory bank; not from the emulator) against the emulator, and "
-            "report the expected 68%% half-widths of q_z and q_y and the fraction of catalogs with "
+            "report the expected 68% half-widths of q_z and q_y and the fraction of catalogs with "
             "P(q_z<1) > threshold (P(q_z>1) for a prolate truth). Writes forecast.json and forecast.png. "
             "Options override the TOML file (--config; see --print-config)."
         ),

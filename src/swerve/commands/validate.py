@@ -17,7 +17,7 @@ def add_parser(sub):
         description=(
             "Validate an emulator against a held-out run (swerve train CONFIG --out DIR --held-out): "
             "emulator accuracy (emulated vs simulated summaries normalised by both uncertainties), "
-            "simulation-based calibration (rank histograms and 68%%/95%% coverage with binomial error bars, "
+            "simulation-based calibration (rank histograms and 68%/95% coverage with binomial error bars, "
             "from catalogs drawn from the held-out full simulations) and power against sample size "
             "(how often the posterior median of q_z, rounded to a grid, is the true value), side by side "
             "with the KS-test baseline. Settings come from a TOML file (--config; see --print-config); "
