@@ -154,3 +154,27 @@ def test_malformed_catalog_lists_every_problem_and_writes_nothing(tmp_path, smok
         assert fragment in err
     assert "Traceback" not in err
     assert not out.exists()
+
+
+def test_ensemble_emulator_variance_is_close_to_per_walker(smoke_run, mock_catalog):
+    """The 'ensemble' shortcut (emulator variance at the walkers' mean) changes the log-likelihood
+    of an ensemble spread like a posterior by far less than one unit."""
+    from swerve.catalog import read_catalog
+    from swerve.emulate import load
+    from swerve.frames import SolarParameters
+    from swerve.likelihood import Likelihood
+    from swerve.summaries import SummarySpec
+
+    _, emu_dir = smoke_run
+    emu = load(emu_dir)
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    cat = read_catalog(mock_catalog)
+    from swerve.fit import star_terms
+
+    terms, _ = star_terms(cat, spec, load_fit_config(None, FAST), SolarParameters.from_name("v4.0"))
+    rng = np.random.default_rng(3)
+    th = np.array([1.05, 0.9, -0.5]) + rng.normal(0, [0.03, 0.03, 0.1], size=(16, 3))
+    exact = Likelihood(emu, terms, spec, emulator_variance="per-walker")(th)
+    fast = Likelihood(emu, terms, spec, emulator_variance="ensemble")(th)
+    assert np.max(np.abs(exact - fast)) < 0.1
+    assert not np.array_equal(exact, fast)

@@ -99,6 +99,12 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print(f"swerve {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into e.g. `head`, which closed early
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return EXIT_OK
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):

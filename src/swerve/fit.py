@@ -67,6 +67,8 @@ FIT_SCHEMA = Schema("fit", (
     )),
     Section("emulator", (
         Key("include_variance", "bool", True, doc="fold the emulator's predictive variance into the density"),
+        Key("variance", "str", "ensemble", choices=("ensemble", "per-walker"),
+            doc="evaluate that variance once per call at the walkers' mean (fast) or at every walker (exact)"),
     )),
 ))
 
@@ -211,7 +213,8 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     t0 = time.perf_counter()
     terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
     t_terms = time.perf_counter() - t0
-    like = Likelihood(emu, terms, spec, include_emulator_variance=cfg["emulator"]["include_variance"])
+    like = Likelihood(emu, terms, spec, include_emulator_variance=cfg["emulator"]["include_variance"],
+                      emulator_variance=cfg["emulator"]["variance"])
     names = list(emu.parameter_names)
     bounds = np.asarray(emu.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
