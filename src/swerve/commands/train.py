@@ -68,11 +68,11 @@ def run(args) -> int:
           f"({summary.n_computed} computed, {summary.n_skipped} already done) in {wall:.1f} s")
     if args.held_out or args.no_fit:
         return EXIT_OK
-    _fit_emulator(setup, args, collect, training_table, wall)
+    _fit_emulator(setup, args, collect, training_table, wall, summary.n_computed)
     return EXIT_OK
 
 
-def _fit_emulator(setup, args, collect, training_table, wall):
+def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
     import numpy as np
 
     from ..emulate import GPEmulator, save
@@ -96,7 +96,9 @@ def _fit_emulator(setup, args, collect, training_table, wall):
         "n_design_points": int(len(theta)),
         "n_training_rows": int(len(X)),
         "master_seed": setup.cfg["design"]["seed"],
-        "simulation_wall_s": round(wall, 1),
+        # this invocation only: a resumed run computes just the missing points
+        "simulation_wall_s_this_invocation": round(wall, 1),
+        "points_computed_this_invocation": int(n_computed),
         "fit_wall_s": round(fit_s, 1),
         "bank_seconds_median": float(np.median(outputs["bank_seconds"])),
         "max_energy_error": float(np.max(outputs["max_energy_error"])),
