@@ -222,6 +222,13 @@ def _buffered_backend(path, flush_every: int):
     return BufferedHDFBackend(str(path))
 
 
+def _autocorr(sampler) -> np.ndarray:
+    """emcee's integrated autocorrelation time, NaN (not a warning) for a parameter whose chain
+    has not moved yet in some walker (emcee divides by its zero variance)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.asarray(sampler.get_autocorr_time(tol=0), dtype=float)
+
+
 def _initial_walkers(posterior, x0, nwalkers, rng):
     span = posterior.high - posterior.low
     p0 = x0 + 1e-3 * span * rng.standard_normal((nwalkers, posterior.ndim))
@@ -308,7 +315,7 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
         it += 1  # counted here: sampler.iteration would read (and flush) the backend every step
         if it % check_every:
             continue
-        tau = sampler.get_autocorr_time(tol=0)
+        tau = _autocorr(sampler)
         if np.all(np.isfinite(tau)) and np.all(n_tau * tau < it) and np.all(np.abs(old_tau - tau) < tau_rtol * tau):
             converged = True
             break
@@ -316,7 +323,7 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
     if backend is not None:
         backend.flush()
     n_steps = sampler.iteration
-    tau = sampler.get_autocorr_time(tol=0)
+    tau = _autocorr(sampler)
     if not converged:
         warnings.warn(
             f"sampler: stopped at the step cap ({n_steps} steps) before the chain was {n_tau:g} "
