@@ -35,14 +35,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from . import __version__
-from .bank import TrajectoryBank, build_bank, effective_sample_size, sample_weights
-
-
-def _chmod_default(path):
-    """Give a temp file (mkstemp: mode 0600) the permissions of a normally created file."""
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(path, 0o666 & ~mask)
+from .bank import TrajectoryBank, _chmod_default, build_bank, effective_sample_size, sample_weights
 
 
 __all__ = [
@@ -663,12 +656,9 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
 
     from .frames import resolve_solar
 
-    seed = None
-    if isinstance(rng, (int, np.integer)) and not isinstance(rng, bool):
-        seed = int(rng)
-        rng = np.random.default_rng(seed)
-    if not isinstance(rng, np.random.Generator):
-        raise ValueError("rng: expected a numpy Generator or an integer seed")
+    from .rng import as_generator
+
+    rng, seed = as_generator(rng)
     if not isinstance(error_model, ErrorModel):
         raise ValueError(f"error_model: expected an ErrorModel, got {type(error_model).__name__}")
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:

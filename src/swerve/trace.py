@@ -497,12 +497,9 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
     from .catalog import draw_samples
     from .galaxy import Galaxy
 
-    seed = None
-    if isinstance(rng, (int, np.integer)) and not isinstance(rng, bool):
-        seed = int(rng)
-        rng = np.random.default_rng(seed)
-    if not isinstance(rng, np.random.Generator):
-        raise ValueError("rng: expected a numpy Generator or an integer seed")
+    from .rng import as_generator
+
+    rng, seed = as_generator(rng)
     galaxy = Galaxy.default() if galaxy is None else galaxy
     samples = draw_samples(catalog, k, rng, distance_prior=distance_prior, solar=solar,
                            length_scale=length_scale, max_distance=max_distance)
