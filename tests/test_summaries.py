@@ -132,3 +132,18 @@ def test_spec_round_trip():
     spec = SummarySpec(r_edges=(10.0, 50.0, 200.0), lat_edges=(0.0, 45.0, 90.0))
     assert SummarySpec.from_dict(spec.to_dict()) == spec
     assert len(spec.output_names()) == spec.n_outputs == 4 * N_STAT
+
+
+def test_replicate_noise_matches_analytic_for_independent_samples(rng):
+    """With independent samples split into 8 replicates, the replicate estimate of the noise of
+    a cell mean equals sigma / sqrt(n) (analytic) within its own sampling error (7 dof)."""
+    spec = SummarySpec(n_boot=16, r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0))
+    pos, vel, _, orbit = _population(rng, 40_000)
+    rep = orbit % 8
+    res = compute_summaries(spec, pos, vel, np.ones(len(pos)), orbit, rng, replicate=rep)
+    sd = np.sqrt(res.noise_var[:3])
+    expected = np.sqrt(np.diag(COV) / len(pos))
+    assert np.all((sd / expected > 0.4) & (sd / expected < 1.7))
+    assert res.meta["n_replicates"] == 8
+    with pytest.raises(ValueError, match="at least two replicates"):
+        compute_summaries(spec, pos, vel, np.ones(len(pos)), orbit, rng, replicate=np.zeros(len(pos)))

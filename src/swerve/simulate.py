@@ -69,6 +69,8 @@ TRAIN_SCHEMA = Schema("train", (
         Key("v_lo", "float", 500.0, min=1.0, doc="lowest proposal launch speed, km/s"),
         Key("v_hi", "float", 5000.0, min=1.0, doc="highest proposal launch speed, km/s"),
         Key("rtol", "float", 1e-9, min=1e-14, max=1e-4, doc="integrator relative tolerance"),
+        Key("replicates", "int", 8, min=1, doc="independent sub-banks (own Sobol scramble) for the simulation "
+            "noise; 1: Poisson bootstrap over orbits"),
     )),
     Section("design", (
         Key("method", "str", "sobol", choices=("sobol", "lhs"), doc="space-filling design"),
@@ -256,31 +258,45 @@ def simulate_point(cfg: dict, theta: dict, seed) -> dict[str, np.ndarray]:
     s_bank, s_launch, s_boot = ss.spawn(3)
     galaxy = setup.galaxy_at(theta)
     b = cfg["bank"]
+    R = int(b.get("replicates", 1))
+    if b["n_orbits"] < 16 * R:
+        raise ValueError(f"[bank] n_orbits = {b['n_orbits']} is too few for {R} replicates (at least 16 each)")
     t0 = time.perf_counter()
-    bank = build_bank(
-        galaxy, b["n_orbits"], int(s_bank.generate_state(1)[0]), t_max=setup.flight_time_max, dt=b["dt"],
-        v_lo=b["v_lo"], v_hi=b["v_hi"], r_min_store=setup.spec.r_edges[0], r_max=setup.spec.r_edges[-1],
-        rtol=b["rtol"],
-    )
+    banks = [
+        build_bank(
+            galaxy, b["n_orbits"] // R, int(ss_r.generate_state(1)[0]), t_max=setup.flight_time_max, dt=b["dt"],
+            v_lo=b["v_lo"], v_hi=b["v_hi"], r_min_store=setup.spec.r_edges[0], r_max=setup.spec.r_edges[-1],
+            rtol=b["rtol"],
+        )
+        for ss_r in (s_bank.spawn(R) if R > 1 else [s_bank])
+    ]
     t_bank = time.perf_counter() - t0
     pts = launch_points(setup, s_launch)
     rng = np.random.default_rng(s_boot)
     values, noise, ess = [], [], []
     for row in pts:
         launch = setup.launch_at(dict(zip(setup.launch_names, row)))
-        pop = population_from_bank(bank, launch, selection=setup.selection, galaxy=galaxy, mirror="none",
-                                   flight_time_max=setup.flight_time_max)
-        res = compute_summaries(setup.spec, pop.pos, pop.vel, pop.weight, pop.orbit, rng)
+        parts = [population_from_bank(bk, launch, selection=setup.selection, galaxy=galaxy, mirror="none",
+                                      flight_time_max=setup.flight_time_max) for bk in banks]
+        offset = np.cumsum([0] + [bk.n_orbits for bk in banks])
+        pos = np.concatenate([p.pos for p in parts])
+        vel = np.concatenate([p.vel for p in parts])
+        # each sub-bank's weights are per its own orbit count: pool them with equal shares
+        w = np.concatenate([p.weight / R for p in parts])
+        orb = np.concatenate([p.orbit + offset[j] for j, p in enumerate(parts)])
+        rep = np.concatenate([np.full(p.n, j) for j, p in enumerate(parts)]) if R > 1 else None
+        res = compute_summaries(setup.spec, pos, vel, w, orb, rng, replicate=rep)
         values.append(res.values)
         noise.append(res.noise_var)
         ess.append(res.ess)
+    max_de = max(bk.max_energy_error for bk in banks)
     return {
         "launch": np.asarray(pts, dtype=float),
         "values": np.asarray(values),
         "noise_var": np.asarray(noise),
         "ess": np.asarray(ess),
         "bank_seconds": np.array(t_bank),
-        "max_energy_error": np.array(bank.max_energy_error),
+        "max_energy_error": np.array(max_de),
     }
 
 

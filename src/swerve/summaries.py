@@ -204,7 +204,8 @@ class SummaryResult:
     meta: dict = field(default_factory=dict)
 
 
-def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: bool = True) -> SummaryResult:
+def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: bool = True,
+                      replicate=None) -> SummaryResult:
     """Summaries of a selected, weighted population.
 
     Parameters
@@ -220,6 +221,14 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
     strict : bool
         Raise when a cell's effective sample size is below ``spec.min_ess`` (default); otherwise
         leave NaN there.
+    replicate : int array (n,), optional
+        Index of the independent replicate each sample comes from (e.g. sub-banks drawn from
+        independently scrambled quasi-random sequences). Given, the noise variance of each
+        summary is the spread of the per-replicate summaries divided by their number (the
+        randomized quasi-Monte Carlo estimate); the Poisson bootstrap over orbits, which
+        assumes independent orbits, overestimates the noise of quasi-random banks 5-20 fold
+        (measured: 4 independent banks at one Galaxy). Statistics a replicate cannot estimate
+        (an empty cell) fall back to the bootstrap.
     """
     pos = np.asarray(pos, dtype=float)
     vel = np.asarray(vel, dtype=float)
@@ -254,9 +263,24 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
         boots[b] = _stats_from_moments(Wb, mb, sb).reshape(-1)
     with np.errstate(invalid="ignore"):
         noise_var = np.nanvar(boots, axis=0, ddof=1)
+    meta = {"n_orbits": int(len(uniq)), "n_boot": spec.n_boot, "noise": "poisson bootstrap over orbits"}
+    if replicate is not None:
+        rep = np.asarray(replicate)[keep]
+        labels = np.unique(rep)
+        if len(labels) < 2:
+            raise ValueError("summaries: replicate noise needs at least two replicates")
+        per = np.empty((len(labels), values.size))
+        for j, r in enumerate(labels):
+            sel = rep == r
+            Wr, mr, sr = _cell_moments(cell[sel], comps[sel], w_k[sel], nc)
+            per[j] = _stats_from_moments(Wr, mr, sr).reshape(-1)
+        ok = np.all(np.isfinite(per), axis=0)
+        rep_var = np.var(per, axis=0, ddof=1) / len(labels)
+        noise_var = np.where(ok, rep_var, noise_var)
+        meta.update(noise=f"spread of {len(labels)} independent replicates", n_replicates=int(len(labels)),
+                    n_bootstrap_fallback=int(np.sum(~ok)))
     counts = np.bincount(cell, minlength=nc)
-    return SummaryResult(values=values, noise_var=noise_var, ess=ess, n_samples=counts,
-                         meta={"n_orbits": int(len(uniq)), "n_boot": spec.n_boot})
+    return SummaryResult(values=values, noise_var=noise_var, ess=ess, n_samples=counts, meta=meta)
 
 
 def stats_to_gaussian(values, n_cells: int):
