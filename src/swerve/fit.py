@@ -8,6 +8,8 @@ recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampli
 Run folder (``--out``)::
 
     chain.h5        emcee HDF5 backend (an interrupted fit resumes from it)
+    chain.key       what the chain belongs to (stars, configuration, emulator hash): a chain
+                    of other data is not resumed but restarted from its last walkers
     stars.npz       the θ-independent terms of every star, with a hash of its inputs
     summary.json    per parameter: median, 68% / 95% credible intervals; P(q_z < 1), P(q_y < 1);
                     autocorrelation times, acceptance, convergence
