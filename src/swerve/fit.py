@@ -43,7 +43,10 @@ FIT_SCHEMA = Schema("fit", (
         Key("drop_invalid", "bool", False, doc="drop invalid rows (reported) instead of refusing the file"),
     )),
     Section("errors", (
-        Key("samples", "int", 64, min=1, doc="distance samples per star (importance sampling)"),
+        Key("method", "str", "linear", choices=("linear", "samples"),
+            doc="distance uncertainty: propagated linearly into the velocity at the mean distance (smooth, fast) "
+                "or marginalised by importance sampling over the distance samples (for poor parallaxes)"),
+        Key("samples", "int", 64, min=1, doc="distance samples per star (for the mean and variance, or the sum)"),
         Key("distance_prior", "str", "none", choices=("none", "uniform-volume", "exponential-length"),
             doc="prior on distances from parallaxes"),
         Key("length_scale", "float", 10.0, min=0.01, doc="length scale of 'exponential-length', kpc"),
@@ -118,10 +121,10 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
     distance samples drawn from its own seed (``[errors] seed`` and its id), reusing the cached
     terms of unchanged stars from ``cache_path``. Returns (terms, n_reused)."""
     from .catalog import draw_samples
-    from .likelihood import StarTerms, prepare_stars
+    from .likelihood import StarTerms, linearised_samples, prepare_stars
 
     e = cfg["errors"]
-    settings = json.dumps({"k": e["samples"], "prior": e["distance_prior"], "L": e["length_scale"],
+    settings = json.dumps({"k": e["samples"], "method": e["method"], "prior": e["distance_prior"], "L": e["length_scale"],
                            "dmax": e["max_distance"], "seed": e["seed"], "solar": solar.to_dict(),
                            "spec": spec.to_dict(), "r_min": r_min, "v": 1}, sort_keys=True)
     hashes = [_star_hash(catalog, i, settings) for i in range(catalog.n)]
@@ -144,6 +147,8 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
             rng = np.random.default_rng(_star_seed(e["seed"], catalog.ids[i]))
             smp = draw_samples(sub, e["samples"], rng, distance_prior=e["distance_prior"], solar=solar,
                                length_scale=e["length_scale"], max_distance=e["max_distance"])
+            if e["method"] == "linear":
+                smp = linearised_samples(sub, smp, solar)
             t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
             if t.n == 0:  # outside the selection: reported, never silently used
                 excluded.extend(t.excluded)

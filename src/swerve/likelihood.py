@@ -170,8 +170,78 @@ def velocity_moments(catalog, samples, solar=None):
     return v_mean, v_cov
 
 
+def _distance_stratum_cov(catalog, samples, solar, u_mean):
+    """Covariance (n, k, 3, 3) of the folded velocity within each sample's distance stratum
+    (see :func:`prepare_stars`)."""
+    d = samples.distance
+    order = np.argsort(d, axis=1)
+    ds = np.take_along_axis(d, order, axis=1)
+    gaps = np.diff(ds, axis=1)
+    spacing = np.empty_like(ds)
+    spacing[:, 1:-1] = 0.5 * (gaps[:, 1:] + gaps[:, :-1])
+    spacing[:, 0] = gaps[:, 0]
+    spacing[:, -1] = gaps[:, -1]
+    var = np.empty_like(ds)
+    np.put_along_axis(var, order, spacing**2 / 12.0, axis=1)
+    g = _velocity_gradient(catalog, samples, solar)
+    return g[..., :, None] * g[..., None, :] * var[..., None, None]
+
+
+def linearised_samples(catalog, samples, solar=None):
+    """Collapse each star's distance samples to one point: the weighted mean distance, with the
+    weighted distance variance kept in ``samples.settings["distance_var"]`` for
+    :func:`prepare_stars` to propagate linearly into the velocity (see its ``distance``).
+
+    Returns a new ErrorSamples with k = 1.
+    """
+    import dataclasses
+
+    from .frames import helio_to_galacto
+
+    w = np.exp(samples.log_prior - samples.log_prior.max(axis=1, keepdims=True))
+    w /= w.sum(axis=1, keepdims=True)
+    d_mean = np.sum(w * samples.distance, axis=1)
+    d_var = np.sum(w * (samples.distance - d_mean[:, None]) ** 2, axis=1)
+    pos, _ = helio_to_galacto(catalog.ra, catalog.dec, d_mean, 0.0, 0.0, 0.0,
+                              solar=solar if solar is not None else samples.settings.get("solar"))
+    from .frames import PM_KMS_PER_KPC_MASYR
+
+    one = lambda a: np.asarray(a)[:, None]  # noqa: E731
+    settings = dict(samples.settings, distance_var=d_var.tolist(), distance_method="linear")
+    return dataclasses.replace(
+        samples, position=pos[:, None, :], velocity=np.full((catalog.n, 1, 3), np.nan),
+        log_weight=one(2.0 * np.log(PM_KMS_PER_KPC_MASYR * d_mean)), log_jacobian=one(np.zeros(catalog.n)),
+        log_prior=one(np.zeros(catalog.n)), distance=one(d_mean), pmra=one(catalog.pmra), pmdec=one(catalog.pmdec),
+        vlos=one(catalog.vlos), settings=settings,
+    )
+
+
+def _velocity_gradient(catalog, samples, solar):
+    """du/dd (n, k, 3) of the folded velocity at each sample, by a central difference along the
+    line of sight."""
+    import dataclasses
+
+    from .frames import helio_to_galacto
+
+    d = samples.distance
+    n, k = d.shape
+    eps = 1e-3 * d
+    ra = np.repeat(catalog.ra, k)
+    dec = np.repeat(catalog.dec, k)
+    out = []
+    for sign in (1.0, -1.0):
+        dd = d + sign * eps
+        pos, _ = helio_to_galacto(ra, dec, dd.ravel(), 0.0, 0.0, 0.0, solar=solar if solar is not None
+                                  else samples.settings.get("solar"))
+        shifted = dataclasses.replace(samples, distance=dd, position=pos.reshape(n, k, 3))
+        vm, _ = velocity_moments(catalog, shifted, solar)
+        out.append(np.einsum("nkij,nkj->nki", _folding_basis(shifted.position), vm))
+    return (out[0] - out[1]) / (2.0 * eps[..., None])
+
+
 def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: float = 0.5,
-                  r_min: float | None = None, allow_empty: bool = False) -> StarTerms:
+                  r_min: float | None = None, allow_empty: bool = False,
+                  stratum_variance: bool = True) -> StarTerms:
     """The θ-independent terms of every usable star; stars outside the selection are excluded
     and listed in ``StarTerms.excluded`` (never silently used).
 
@@ -190,6 +260,17 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
     allow_empty : bool
         Return an empty StarTerms (with the reasons in ``excluded``) instead of raising when no
         star is usable.
+    stratum_variance : bool
+        Treat each distance sample as the centre of its stratum of the star's distance
+        distribution and add the velocity spread within that stratum, propagated linearly
+        (``g gᵀ σ_k²`` with ``g = du/dd`` by finite differences and ``σ_k² = Δ_k² / 12`` from the
+        spacing Δ_k of the sorted samples). Without it the folded velocity at a sample is
+        exact for that distance, and with precise proper motions each sample's density is a
+        narrow spike: K samples of a 10% distance error then spread a star's velocity by tens
+        of km/s against an intrinsic width of a few, and the importance sum is dominated by
+        whichever sample lands closest (measured: fits of 100-star mocks with 10% distances and
+        precise proper motions ran into the corners of the domain). With it, the sum is a
+        smooth mixture that tends to the exact marginal as K grows.
     """
     if samples.n != catalog.n:
         raise ValueError(f"samples: expected {catalog.n} stars (the catalog's), got {samples.n}")
@@ -203,6 +284,12 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
     B = _folding_basis(pos)
     u_mean = np.einsum("nkij,nkj->nki", B, v_mean)
     u_cov = B @ v_cov @ np.swapaxes(B, -1, -2)
+    if samples.settings.get("distance_method") == "linear":
+        g = _velocity_gradient(catalog, samples, solar)
+        dv = np.asarray(samples.settings["distance_var"], dtype=float)[:, None]
+        u_cov = u_cov + g[..., :, None] * g[..., None, :] * dv[..., None, None]
+    elif stratum_variance and samples.k > 1:
+        u_cov = u_cov + _distance_stratum_cov(catalog, samples, solar, u_mean)
     lw = samples.log_weight - np.max(samples.log_weight, axis=1, keepdims=True)
     w = np.exp(lw)
     w /= w.sum(axis=1, keepdims=True)
