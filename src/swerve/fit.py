@@ -43,9 +43,9 @@ FIT_SCHEMA = Schema("fit", (
         Key("drop_invalid", "bool", False, doc="drop invalid rows (reported) instead of refusing the file"),
     )),
     Section("errors", (
-        Key("method", "str", "linear", choices=("linear", "samples"),
-            doc="distance uncertainty: propagated linearly into the velocity at the mean distance (smooth, fast) "
-                "or marginalised by importance sampling over the distance samples (for poor parallaxes)"),
+        Key("method", "str", "smoothed", choices=("smoothed", "linear", "samples"),
+            doc="distance uncertainty: importance sampling over kernel-smoothed distance samples (smoothed), "
+                "propagated linearly at the mean distance (linear, fastest), or plain importance sampling (samples)"),
         Key("samples", "int", 64, min=1, doc="distance samples per star (for the mean and variance, or the sum)"),
         Key("distance_prior", "str", "none", choices=("none", "uniform-volume", "exponential-length"),
             doc="prior on distances from parallaxes"),
@@ -121,7 +121,7 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
     distance samples drawn from its own seed (``[errors] seed`` and its id), reusing the cached
     terms of unchanged stars from ``cache_path``. Returns (terms, n_reused)."""
     from .catalog import draw_samples
-    from .likelihood import StarTerms, linearised_samples, prepare_stars
+    from .likelihood import StarTerms, linearised_samples, prepare_stars, smoothed_samples
 
     e = cfg["errors"]
     settings = json.dumps({"k": e["samples"], "method": e["method"], "prior": e["distance_prior"], "L": e["length_scale"],
@@ -149,6 +149,8 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
                                length_scale=e["length_scale"], max_distance=e["max_distance"])
             if e["method"] == "linear":
                 smp = linearised_samples(sub, smp, solar)
+            elif e["method"] == "smoothed":
+                smp = smoothed_samples(sub, smp, solar)
             t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
             if t.n == 0:  # outside the selection: reported, never silently used
                 excluded.extend(t.excluded)

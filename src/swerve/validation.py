@@ -324,10 +324,11 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
     rng = np.random.default_rng(seed)
     cat = catalog_from_table(table, source="mock catalog")
     smp = draw_samples(cat, fit_cfg["samples"], rng, solar=solar)
-    if fit_cfg.get("method", "linear") == "linear":  # as swerve fit does by default
-        from .likelihood import linearised_samples
+    method = fit_cfg.get("method", "smoothed")  # swerve fit's default
+    if method in ("linear", "smoothed"):
+        from .likelihood import linearised_samples, smoothed_samples
 
-        smp = linearised_samples(cat, smp, solar)
+        smp = (linearised_samples if method == "linear" else smoothed_samples)(cat, smp, solar)
     stars = prepare_stars(cat, smp, spec, solar=solar)
     like = Likelihood(emulator, stars, spec)
     post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))

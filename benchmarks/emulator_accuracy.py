@@ -1,0 +1,37 @@
+"""Held-out accuracy of an emulator: normalised residuals per statistic.
+
+    python benchmarks/emulator_accuracy.py --emulator emulators/default --held-out runs/default2-held-out
+"""
+
+import argparse
+
+import numpy as np
+
+from swerve.emulate import load
+from swerve.simulate import training_setup_from_dict, training_table
+from swerve.summaries import STAT_NAMES
+from swerve.training import collect
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__)
+    ap.add_argument("--emulator", default="emulators/default")
+    ap.add_argument("--held-out", required=True)
+    args = ap.parse_args()
+    emu = load(args.emulator)
+    setup = training_setup_from_dict(emu.metadata["config"])
+    _, th, out = collect(args.held_out)
+    X, Y, V = training_table(setup, th, out)
+    m, sd = emu.predict(X, return_std=True)
+    z = (m - Y) / np.sqrt(sd**2 + V)
+    print(f"{len(X)} held-out rows; overall RMS z {np.sqrt(np.mean(z**2)):.2f}")
+    nc = setup.spec.n_cells
+    zz, err = z.reshape(len(z), nc, 9), (m - Y).reshape(len(z), nc, 9)
+    sdd, nv = sd.reshape(len(z), nc, 9), np.sqrt(V).reshape(len(z), nc, 9)
+    for k, n in enumerate(STAT_NAMES):
+        print(f"{n:10s} RMS z {np.sqrt(np.mean(zz[..., k]**2)):5.2f}  RMS error {np.sqrt(np.mean(err[..., k]**2)):8.3f}  "
+              f"median emulator sd {np.median(sdd[..., k]):8.3f}  median simulation sd {np.median(nv[..., k]):8.3f}")
+
+
+if __name__ == "__main__":
+    main()
