@@ -54,9 +54,14 @@ def galaxy_curves(galaxy, path, r_min=0.5, r_max=200.0, measurements=()):
 
 
 _LABELS = {
-    "q_y": r"$q_y$", "q_z": r"$q_z$", "m_halo": r"$M_{\rm halo}$ [M$_\odot$]", "m_disk": r"$M_{\rm disk}$ [M$_\odot$]",
+    "q_y": r"$q_y$", "q_z": r"$q_z$", "m_halo": r"$M_{\rm halo}$ [$10^{12}$ M$_\odot$]",
+    "m_disk": r"$M_{\rm disk}$ [$10^{11}$ M$_\odot$]",
     "r_s": r"$r_s$ [kpc]", "slope": r"launch slope", "v_min": r"$v_{\rm min}$", "v_max": r"$v_{\rm max}$",
 }
+
+
+#: plotted in these units (the labels say so)
+_SCALE = {"m_halo": 1e12, "m_disk": 1e11}
 
 
 def corner_plot(samples, names, path, truths=None):
@@ -65,6 +70,10 @@ def corner_plot(samples, names, path, truths=None):
 
     plt = _pyplot()
     labels = [_LABELS.get(n, n) for n in names]
+    scale = np.array([_SCALE.get(n, 1.0) for n in names])
+    samples = np.asarray(samples) / scale
+    if truths is not None:
+        truths = [None if t is None else t / s_ for t, s_ in zip(truths, scale)]
     fig = corner.corner(
         samples, labels=labels, truths=truths, quantiles=[0.16, 0.5, 0.84], show_titles=True,
         title_fmt=".3g", levels=(0.393, 0.865), plot_datapoints=False, fill_contours=True,
@@ -121,9 +130,10 @@ def variants_plot(rows, path):
                              sharey=True, constrained_layout=True, squeeze=False)
     y = np.arange(len(rows))[::-1]
     for ax, p in zip(axes[0], params):
-        med = np.array([r[f"{p}_median"] for r in rows])
-        lo = np.array([r[f"{p}_lo68"] for r in rows])
-        hi = np.array([r[f"{p}_hi68"] for r in rows])
+        sc = _SCALE.get(p, 1.0)
+        med = np.array([r[f"{p}_median"] for r in rows]) / sc
+        lo = np.array([r[f"{p}_lo68"] for r in rows]) / sc
+        hi = np.array([r[f"{p}_hi68"] for r in rows]) / sc
         ax.errorbar(med, y, xerr=[med - lo, hi - med], fmt="o", color="#1f4e79", capsize=3)
         if p in ("q_y", "q_z"):
             ax.axvline(1.0, color="0.6", ls="--", lw=0.8)
