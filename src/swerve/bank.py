@@ -353,13 +353,9 @@ def reach_speed(galaxy, r0: float, r: float) -> float:
 
 
 def _check_positive(name, value, unit):
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name}: expected a positive number in {unit}, got {value!r}") from None
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{name}: expected a positive number in {unit}, got {value!r}")
-    return v
+    from .units import positive_float
+
+    return positive_float(name, value, unit)
 
 
 def _sobol(n, seed):

@@ -87,13 +87,9 @@ def _check_n(n):
 
 
 def _check_m_bh(m_bh):
-    try:
-        v = float(m_bh)
-    except (TypeError, ValueError):
-        raise ValueError(f"m_bh: expected the black-hole mass in Msun (a positive number), got {m_bh!r}") from None
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"m_bh: expected the black-hole mass in Msun (a positive number), got {m_bh!r}")
-    return v
+    from .units import positive_float
+
+    return positive_float("m_bh", m_bh, "Msun", what="the black-hole mass (a positive number)")
 
 
 def _powerlaw_norm(lo, hi, k):

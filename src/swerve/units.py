@@ -10,6 +10,8 @@ Orbit integration uses the natural time unit ``T = 1 kpc / (1 km/s)`` (about 977
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from astropy import constants as const
 from astropy import units as u
@@ -81,3 +83,14 @@ def myr_to_internal(t_myr):
 def internal_to_myr(t):
     """The internal time unit kpc/(km/s) to Myr."""
     return np.asarray(t, dtype=float) * TIME_UNIT_MYR
+
+
+def positive_float(name: str, value, unit: str, what: str = "a positive number") -> float:
+    """``value`` as a finite positive float, or a one-line ValueError naming ``name``."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = math.nan
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}: expected {what} in {unit}, got {value!r}")
+    return v
