@@ -8,7 +8,7 @@ from astropy.table import Table
 
 from swerve.catalog import catalog_from_table, draw_samples
 from swerve.frames import galacto_to_helio
-from swerve.likelihood import Likelihood, prepare_stars, velocity_moments
+from swerve.likelihood import DEFAULT_VELOCITY_FLOOR, Likelihood, prepare_stars, velocity_moments
 from swerve.summaries import SummarySpec, folded_components
 
 SPEC1 = SummarySpec(r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0))
@@ -24,7 +24,7 @@ class ToyEmulator:
     def __init__(self, emu_sd=0.0):
         self.emu_sd = emu_sd
 
-    def predict(self, theta, return_std=False):
+    def predict(self, theta, return_std=False, return_cov=False):
         theta = np.atleast_2d(theta)
         y = np.zeros((len(theta), 9))
         y[:, 0] = 500.0
@@ -32,6 +32,10 @@ class ToyEmulator:
         y[:, 3:6] = np.log(SIG)
         if return_std:
             return y, np.full_like(y, self.emu_sd)
+        if return_cov:  # an error of the cell means only, the same at every theta
+            cov = np.zeros((len(y), 9, 9))
+            cov[:, [0, 1, 2], [0, 1, 2]] = self.emu_sd**2
+            return y, cov
         return y
 
 
@@ -91,7 +95,7 @@ def _analytic_posterior(terms):
     mu0 = np.array([500.0, 0.0, 0.0])
     prec, b = 0.0, 0.0
     for i in range(terms.n):
-        S = np.diag(SIG**2) + terms.cov[i, 0]
+        S = np.diag(SIG**2 + DEFAULT_VELOCITY_FLOOR**2) + terms.cov[i, 0]
         Si = np.linalg.inv(S)
         prec += e @ Si @ e
         b += e @ Si @ (terms.mean[i, 0] - mu0)
@@ -112,13 +116,54 @@ def test_likelihood_is_the_analytic_gaussian(rng):
     np.testing.assert_allclose(ll - ll[3], expected - expected[3], atol=1e-6)
 
 
-def test_emulator_variance_widens_the_likelihood(rng):
+def test_velocity_floor_adds_in_quadrature(rng):
+    """The floor is the model's resolution: floor² on the diagonal of every cell covariance."""
+    cat, _ = _catalog(rng, n=5)
+    terms = prepare_stars(cat, draw_samples(cat, 2, rng), SPEC1)
+    th = np.array([[1.0]])
+    _, bare = Likelihood(ToyEmulator(), terms, SPEC1, velocity_floor=0.0).cell_gaussians(th)
+    _, floored = Likelihood(ToyEmulator(), terms, SPEC1, velocity_floor=2.5).cell_gaussians(th)
+    np.testing.assert_allclose(bare[0, 0], np.diag(SIG**2), rtol=1e-12)
+    np.testing.assert_allclose(floored[0, 0] - bare[0, 0], 6.25 * np.eye(3), rtol=1e-12)
+    with pytest.raises(ValueError, match="velocity_floor"):
+        Likelihood(ToyEmulator(), terms, SPEC1, velocity_floor=-1.0)
+
+
+@pytest.mark.parametrize("mode", ["catalog", "per-star"])
+def test_emulator_variance_widens_the_likelihood(rng, mode):
     cat, _ = _catalog(rng)
     terms = prepare_stars(cat, draw_samples(cat, 4, rng), SPEC1)
     a = np.array([[0.0], [6.0]])
-    d0 = np.diff(Likelihood(ToyEmulator(0.0), terms, SPEC1)(a))[0]
-    d1 = np.diff(Likelihood(ToyEmulator(3.0), terms, SPEC1)(a))[0]
+    d0 = np.diff(Likelihood(ToyEmulator(0.0), terms, SPEC1, emulator_error=mode)(a))[0]
+    d1 = np.diff(Likelihood(ToyEmulator(3.0), terms, SPEC1, emulator_error=mode)(a))[0]
     assert abs(d1) < abs(d0)
+
+
+def test_catalog_level_emulator_error_is_the_exact_joint_gaussian(rng):
+    """Stars with Gaussian errors at fixed positions and an emulator whose cell mean carries one
+    Gaussian error shared by all stars: the stars are jointly Gaussian with covariance
+    blockdiag(S_i) + 1 1ᵀ ⊗ E (a textbook result for a shared random offset), so log L(a) is
+    known in closed form. The catalog-level marginalisation reproduces it to 1e-6; folding the
+    error into every star separately ("per-star") does not (it lets the error average down)."""
+    cat, _ = _catalog(rng, n=60)
+    terms = prepare_stars(cat, draw_samples(cat, 4, rng), SPEC1)
+    e = 1.5
+    grid = np.linspace(-3.0, 9.0, 7)[:, None]
+    n = terms.n
+    S = np.zeros((3 * n, 3 * n))
+    for i in range(n):
+        S[3 * i:3 * i + 3, 3 * i:3 * i + 3] = np.diag(SIG**2 + DEFAULT_VELOCITY_FLOOR**2) + terms.cov[i, 0]
+    C = S + np.kron(np.ones((n, n)), np.eye(3) * e**2)
+    _, logdet = np.linalg.slogdet(C)
+    exact = []
+    for a in grid[:, 0]:
+        r = terms.mean[:, 0].ravel() - np.tile([500.0, a, 0.0], n)
+        exact.append(-0.5 * r @ np.linalg.solve(C, r) - 0.5 * logdet - 1.5 * n * np.log(2 * np.pi))
+    exact = np.array(exact)
+    cat_ll = Likelihood(ToyEmulator(e), terms, SPEC1, emulator_error="catalog")(grid)
+    np.testing.assert_allclose(cat_ll, exact, atol=1e-6)
+    star_ll = Likelihood(ToyEmulator(e), terms, SPEC1, emulator_error="per-star")(grid)
+    assert np.max(np.abs((star_ll - star_ll[3]) - (exact - exact[3]))) > 1.0
 
 
 def test_per_star_sums_and_refit_reuses_terms(rng):
@@ -165,7 +210,7 @@ def _brute_force(terms, emu, a):
     mu = np.array([500.0, a, 0.0])
     out = []
     for i in range(terms.n):
-        v = [terms.log_w[i, k] + multivariate_normal(mu, np.diag(SIG**2) + terms.cov[i, k]).logpdf(terms.mean[i, k])
+        v = [terms.log_w[i, k] + multivariate_normal(mu, np.diag(SIG**2 + DEFAULT_VELOCITY_FLOOR**2) + terms.cov[i, k]).logpdf(terms.mean[i, k])
              for k in range(terms.cell.shape[1]) if terms.cell[i, k] >= 0]
         out.append(logsumexp(v))
     return np.array(out)
@@ -211,8 +256,11 @@ def test_linear_distance_propagation_matches_brute_force_integration(rng):
 
     cat, _ = _catalog(rng, n=6, pm_err=1e-4, vlos_err=0.5, dist_err_frac=0.1)
     big = draw_samples(cat, 20000, rng)
-    brute = Likelihood(ToyEmulator(), prepare_stars(cat, big, SPEC1, stratum_variance=False), SPEC1)
-    lin = Likelihood(ToyEmulator(), prepare_stars(cat, linearised_samples(cat, big), SPEC1), SPEC1)
+    # no velocity floor: the check is about the distance propagation alone
+    brute = Likelihood(ToyEmulator(), prepare_stars(cat, big, SPEC1, stratum_variance=False), SPEC1,
+                       velocity_floor=0.0)
+    lin = Likelihood(ToyEmulator(), prepare_stars(cat, linearised_samples(cat, big), SPEC1), SPEC1,
+                     velocity_floor=0.0)
     a = np.array([[0.0], [6.0]])
     d_brute = np.diff(brute(a))[0]
     d_lin = np.diff(lin(a))[0]

@@ -71,7 +71,13 @@ FIT_SCHEMA = Schema("fit", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
     )),
     Section("emulator", (
-        Key("include_variance", "bool", True, doc="fold the emulator's predictive variance into the density"),
+        Key("include_variance", "bool", True, doc="propagate the emulator's predictive uncertainty (false: take it as exact)"),
+        Key("error", "str", "catalog", choices=("catalog", "per-star"),
+            doc="marginalise the emulator's error of the cell means once for the catalog (shared by its stars) "
+                "or fold it into each star's density (too optimistic for large catalogs)"),
+        Key("velocity_floor", "float", 1.0, min=0.0,
+            doc="km/s added in quadrature to every emulated cell dispersion: the model's resolution "
+                "(the emulated cells are nearly degenerate; see swerve.likelihood.Likelihood)"),
         Key("variance", "str", "ensemble", choices=("ensemble", "per-walker"),
             doc="evaluate that variance once per call at the walkers' mean (fast) or at every walker (exact)"),
     )),
@@ -223,7 +229,8 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
     t_terms = time.perf_counter() - t0
     like = Likelihood(emu, terms, spec, include_emulator_variance=cfg["emulator"]["include_variance"],
-                      emulator_variance=cfg["emulator"]["variance"])
+                      emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
+                      velocity_floor=cfg["emulator"]["velocity_floor"])
     names = list(emu.parameter_names)
     bounds = np.asarray(emu.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])

@@ -65,6 +65,8 @@ VALIDATE_SCHEMA = Schema("validate", (
         Key("n_tau", "float", 25.0, min=1.0, doc="converged when longer than n_tau x tau ..."),
         Key("tau_rtol", "float", 0.1, min=0.0, doc="... and tau changed by less than this fraction"),
         Key("n_draws", "int", 99, min=3, doc="posterior draws kept per fit for the ranks"),
+        Key("velocity_floor", "float", 1.0, min=0.0, doc="km/s added in quadrature to the emulated cell dispersions "
+                                                          "(swerve fit's [emulator] velocity_floor)"),
     ), doc="the in-memory fits"),
     Section("bank", (
         Key("n_orbits", "int", 0, min=0, doc="orbits per validation bank (0: the training configuration's)"),
@@ -312,7 +314,7 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
     ``converged``, ``n_steps``, ``tau``, ``n_stars``, ``seconds``.
     """
     from .catalog import catalog_from_table, draw_samples
-    from .likelihood import Likelihood, prepare_stars
+    from .likelihood import DEFAULT_VELOCITY_FLOOR, Likelihood, prepare_stars
     from .sampling import (
         ConvergenceWarning,
         Posterior,
@@ -330,7 +332,7 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
 
         smp = (linearised_samples if method == "linear" else smoothed_samples)(cat, smp, solar)
     stars = prepare_stars(cat, smp, spec, solar=solar)
-    like = Likelihood(emulator, stars, spec)
+    like = Likelihood(emulator, stars, spec, velocity_floor=fit_cfg.get("velocity_floor", DEFAULT_VELOCITY_FLOOR))
     post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
