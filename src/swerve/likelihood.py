@@ -639,13 +639,13 @@ class Likelihood:
         for k, (a, b) in enumerate(((0, 0), (1, 0), (1, 1), (2, 0), (2, 1), (2, 2))):
             P[:, :, a, b] = fisher[:, :, k]
             P[:, :, b, a] = fisher[:, :, k]
-        Pf = np.zeros((W, n, n))
-        for c in range(nc):
-            Pf[:, 3 * c:3 * c + 3, 3 * c:3 * c + 3] = P[:, c]
         g = grad.reshape(W, n)
-        Lt = np.swapaxes(Lf, -1, -2)
-        B = np.eye(n) + Lt @ Pf @ Lf
-        cvec = np.einsum("...ij,...j->...i", Lt, g) if Lf.shape[0] == W else g @ Lf[0]
+        # Lfᵀ P Lf with P block-diagonal: the 3 rows of Lf of each cell times its 3 x 3 block
+        Lr = Lf.reshape(Lf.shape[0], nc, 3, n)
+        PL = (P @ Lr).reshape(W, n, n)  # rows (cell, component)
+        B = np.swapaxes(Lf, -1, -2) @ PL
+        B[:, np.arange(n), np.arange(n)] += 1.0
+        cvec = np.einsum("wji,wj->wi", Lf, g) if Lf.shape[0] == W else g @ Lf[0]
         C = np.linalg.cholesky(B)
         y = np.linalg.solve(C, cvec[..., None])[..., 0]
         logdet = 2.0 * np.sum(np.log(np.diagonal(C, axis1=-2, axis2=-1)), axis=-1)
