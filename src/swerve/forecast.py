@@ -143,6 +143,8 @@ def plot_forecast(doc: dict, path):
     """Posterior half-widths of q_z and q_y against N, and the fraction of decisive catalogs."""
     from .validation import _pyplot
 
+    from .plots import sample_size_axis
+
     plt = _pyplot()
     rows = doc["rows"]
     n = [r["n_stars"] for r in rows]
@@ -153,14 +155,12 @@ def plot_forecast(doc: dict, path):
             lo = np.array([r[f"width68_{q}"]["p16"] for r in rows])
             hi = np.array([r[f"width68_{q}"]["p84"] for r in rows])
             ax[0].errorbar(n, med, yerr=[med - lo, hi - med], fmt=m, label=q)
-    ax[0].set_xscale("log")
-    ax[0].set_xlabel("stars N")
+    sample_size_axis(ax[0], n)
     ax[0].set_ylabel("68% half-width")
     ax[0].legend()
     ax[1].plot(n, [r.get("p_decisive", np.nan) for r in rows], "o-")
-    ax[1].set_xscale("log")
+    sample_size_axis(ax[1], n)
     ax[1].set_ylim(0, 1.02)
-    ax[1].set_xlabel("stars N")
     thr = doc["settings"]["config"]["threshold"]
     ax[1].set_ylabel(f"fraction with P({doc['settings']['side']}) > {thr:g}")
     fig.suptitle(f"truth q_z = {doc['settings']['truth']['q_z']:g}")

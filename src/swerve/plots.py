@@ -14,6 +14,18 @@ def _pyplot():
     return plt
 
 
+def sample_size_axis(ax, sizes):
+    """A logarithmic x axis of sample sizes, labelled at exactly those sizes (plain numbers)."""
+    from matplotlib.ticker import NullFormatter, NullLocator
+
+    ax.set_xscale("log")
+    sizes = sorted({int(v) for v in sizes})
+    ax.xaxis.set_minor_locator(NullLocator())
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_xticks(sizes, [str(v) for v in sizes])
+    ax.set_xlabel("stars N")
+
+
 def galaxy_curves(galaxy, path, r_min=0.5, r_max=200.0, measurements=()):
     """Circular velocity and escape speed of ``galaxy`` against radius, with measurements.
 
