@@ -67,6 +67,8 @@ VALIDATE_SCHEMA = Schema("validate", (
         Key("n_draws", "int", 99, min=3, doc="posterior draws kept per fit for the ranks"),
         Key("velocity_floor", "float", 1.0, min=0.0, doc="km/s added in quadrature to the emulated cell dispersions "
                                                           "(swerve fit's [emulator] velocity_floor)"),
+        Key("emulator_error", "str", "catalog", choices=("catalog", "per-star", "none"),
+            doc="the emulator's error of the cell means: marginalised per catalog, folded per star, or ignored"),
     ), doc="the in-memory fits"),
     Section("bank", (
         Key("n_orbits", "int", 0, min=0, doc="orbits per validation bank (0: the training configuration's)"),
@@ -332,7 +334,8 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
 
         smp = (linearised_samples if method == "linear" else smoothed_samples)(cat, smp, solar)
     stars = prepare_stars(cat, smp, spec, solar=solar)
-    like = Likelihood(emulator, stars, spec, velocity_floor=fit_cfg.get("velocity_floor", DEFAULT_VELOCITY_FLOOR))
+    like = Likelihood(emulator, stars, spec, velocity_floor=fit_cfg.get("velocity_floor", DEFAULT_VELOCITY_FLOOR),
+                      emulator_error=fit_cfg.get("emulator_error", "catalog"))
     post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
