@@ -61,3 +61,18 @@ def test_galaxy_bad_input_is_one_line(argv, fragment, capsys):
     err = capsys.readouterr().err
     assert fragment in err
     assert err.count("\n") == 1 and "Traceback" not in err
+
+
+@pytest.mark.parametrize("command", ["mock", "train", "fit", "validate", "forecast"])
+@pytest.mark.parametrize("flag", ["--template", "--print-config"])
+def test_every_configured_command_prints_its_template_alone(command, flag, capsys):
+    """Both spellings print the configuration template, with no other argument needed."""
+    assert main([command, flag]) == 0
+    out = capsys.readouterr().out
+    assert out.lstrip().startswith(("#", "[")) and "=" in out
+
+
+def test_fit_without_a_catalog_says_so(capsys):
+    assert main(["fit"]) != 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "CATALOG" in err[0]

@@ -33,7 +33,7 @@ def add_parser(sub):
             "interrupted chain. With --variants, run several nuisance variants side by side."
         ),
     )
-    p.add_argument("catalog", metavar="CATALOG", help="observed (or mock) catalog")
+    p.add_argument("catalog", metavar="CATALOG", nargs="?", help="observed (or mock) catalog")
     p.add_argument("--emulator", metavar="PATH", default=None,
                    help="emulator folder (default: the shipped emulators/default or $SWERVE_EMULATOR)")
     p.add_argument("--config", metavar="FIT.toml", help="fit configuration (priors, errors, sampler); see --template")
@@ -47,7 +47,8 @@ def add_parser(sub):
     p.add_argument("--drop-invalid", action="store_true", help="drop invalid rows (reported) instead of refusing")
     p.add_argument("--jobs", type=int, default=1, help="variants run in parallel (with --variants)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
-    p.add_argument("--template", action="store_true", help="print a documented fit configuration and exit")
+    p.add_argument("--template", "--print-config", dest="template", action="store_true",
+                   help="print a documented fit configuration and exit")
     p.set_defaults(func=run)
 
 
@@ -75,6 +76,8 @@ def run(args) -> int:
     if args.template:
         print(template(FIT_SCHEMA))
         return EXIT_OK
+    if args.catalog is None:
+        raise CommandError("expected a CATALOG file (or --template)")
     if not Path(args.catalog).exists():
         raise CommandError(f"{args.catalog}: no such catalog file")
     emulator = Path(args.emulator) if args.emulator else default_emulator()

@@ -32,7 +32,7 @@ def add_parser(sub):
                    help="probability a catalog needs on the true side of q_z = 1 to count as decisive (default 0.95)")
     p.add_argument("--out", metavar="DIR", help="output folder (created)")
     p.add_argument("--config", metavar="FORECAST.toml", help="forecast settings, incl. [fit] and [bank]")
-    p.add_argument("--print-config", action="store_true", help="print the settings template and exit")
+    p.add_argument("--print-config", "--template", dest="print_config", action="store_true", help="print the settings template and exit")
     p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes for the fits (default 2)")
     p.add_argument("--seed", type=int, default=None, help="master seed (default 1)")
     p.set_defaults(func=run)

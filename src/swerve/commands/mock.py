@@ -85,7 +85,7 @@ def add_parser(sub):
         ),
     )
     p.add_argument("--config", metavar="FILE.toml", help="read options from a TOML file")
-    p.add_argument("--print-config", action="store_true", help="print the configuration template (with the options given) and exit")
+    p.add_argument("--print-config", "--template", dest="print_config", action="store_true", help="print the configuration template (with the options given) and exit")
     p.add_argument("--n", type=int, default=None, help="number of stars (default 300)")
     p.add_argument("--seed", type=int, default=None, help="seed of every random draw (default 0; recorded)")
     p.add_argument("--out", metavar="FILE", help="output catalog: .ecsv, .fits or .csv")

@@ -33,7 +33,8 @@ def add_parser(sub):
     g.add_argument("--dask-local", type=int, metavar="N", help="start a local Dask cluster of N workers")
     p.add_argument("--emulator-out", metavar="DIR", help="write the emulator here (default RUN_DIR/emulator)")
     p.add_argument("--no-fit", action="store_true", help="simulate only; do not fit the emulator")
-    p.add_argument("--template", action="store_true", help="print a documented configuration with every default")
+    p.add_argument("--template", "--print-config", dest="template", action="store_true",
+                   help="print a documented configuration with every default")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 

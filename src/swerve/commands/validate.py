@@ -28,7 +28,7 @@ def add_parser(sub):
     p.add_argument("--held-out", metavar="RUN_DIR", help="held-out run folder of the same training configuration")
     p.add_argument("--out", metavar="REPORT_DIR", help="report folder (created)")
     p.add_argument("--config", metavar="VALIDATE.toml", help="validation settings (default: the full run)")
-    p.add_argument("--print-config", action="store_true", help="print the settings template (with --config's values) and exit")
+    p.add_argument("--print-config", "--template", dest="print_config", action="store_true", help="print the settings template (with --config's values) and exit")
     p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes for the fits (overrides n_jobs)")
     p.add_argument("--seed", type=int, default=None, help="master seed (overrides seed)")
     p.set_defaults(func=run)
