@@ -139,6 +139,18 @@ def test_emulator_variance_widens_the_likelihood(rng, mode):
     assert abs(d1) < abs(d0)
 
 
+def test_catalog_level_error_needs_a_predictive_covariance(rng):
+    class NoCov(ToyEmulator):
+        def predict(self, theta, return_std=False):
+            return ToyEmulator.predict(self, theta, return_std)
+
+    cat, _ = _catalog(rng, n=5)
+    terms = prepare_stars(cat, draw_samples(cat, 2, rng), SPEC1)
+    with pytest.raises(ValueError, match="predictive covariance"):
+        Likelihood(NoCov(1.0), terms, SPEC1)(np.array([[1.0], [2.0]]))
+    assert np.all(np.isfinite(Likelihood(NoCov(1.0), terms, SPEC1, emulator_error="per-star")(np.array([[1.0]]))))
+
+
 def test_catalog_level_emulator_error_is_the_exact_joint_gaussian(rng):
     """Stars with Gaussian errors at fixed positions and an emulator whose cell mean carries one
     Gaussian error shared by all stars: the stars are jointly Gaussian with covariance

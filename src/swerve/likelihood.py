@@ -618,7 +618,12 @@ class Likelihood:
         idx = self._mean_idx
 
         def factor(th):
-            _, cov = self.emulator.predict(th, return_cov=True)
+            try:
+                _, cov = self.emulator.predict(th, return_cov=True)
+            except TypeError:
+                raise ValueError(f"emulator: {type(self.emulator).__name__} gives no predictive covariance "
+                                 "(predict(..., return_cov=True)), which emulator_error='catalog' needs; "
+                                 "use 'per-star' or 'none'") from None
             E = np.asarray(cov, dtype=float)[:, idx][:, :, idx]
             E = 0.5 * (E + np.swapaxes(E, -1, -2))
             jit = 1e-12 * np.max(np.diagonal(E, axis1=-2, axis2=-1), axis=-1) + 1e-300
