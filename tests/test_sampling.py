@@ -123,3 +123,20 @@ def test_reproducible():
 def test_prior_dataclass_validation():
     with pytest.raises(ValueError, match="positive sigma"):
         Prior("a", "gaussian", mu=0.0, sigma=-1.0)
+
+
+def test_start_from_a_previous_ensemble():
+    """A refit's start: walkers already spread over the posterior (draws from the analytic
+    Gaussian, a few put outside the support) give the analytic mean without a maximisation,
+    and an ensemble of the wrong shape is refused."""
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    rng = np.random.default_rng(7)
+    walkers = rng.multivariate_normal(MEAN, COV, 32)
+    walkers[:2] = [9.0, 9.0]  # outside the prior: re-drawn near the ensemble's median
+    res = sample_posterior(post, seed=5, max_steps=6000, walkers=walkers)
+    assert res.converged
+    n_eff = res.n_walkers * (res.n_steps - res.burn_in) / np.max(res.tau)
+    assert np.all(np.abs(res.samples.mean(0) - MEAN) < 5 * np.sqrt(np.diag(COV) / n_eff))
+    assert np.all(np.isfinite(post(res.samples)))
+    with pytest.raises(ValueError, match="walkers: expected shape"):
+        sample_posterior(post, seed=5, max_steps=100, walkers=walkers[:10])

@@ -288,9 +288,18 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
 
 
 def _sample(sample_posterior, post, s, chain, progress, start):
+    """``start``: the previous chain's final walkers (nwalkers, ndim), or None."""
+    walkers = x_map = None
+    if start is not None:
+        n = s["nwalkers"] or max(32, 4 * post.ndim)
+        n += n % 2
+        if start.shape[0] == n:
+            walkers = start
+        else:  # another ensemble size: start a ball at the previous ensemble's median
+            x_map = np.median(start, axis=0)
     return sample_posterior(post, seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=s["max_steps"],
                             check_every=s["check_every"], n_tau=s["n_tau"], tau_rtol=s["tau_rtol"],
-                            backend_path=chain, progress=progress, x_map=start)
+                            backend_path=chain, progress=progress, x_map=x_map, walkers=walkers)
 
 
 def _last_walkers(chain, ndim):
@@ -300,7 +309,7 @@ def _last_walkers(chain, ndim):
         b = emcee.backends.HDFBackend(str(chain), read_only=True)
         last = b.get_last_sample().coords
         if last.shape[1] == ndim:
-            return np.median(last, axis=0)
+            return np.array(last, dtype=float)
     except Exception:  # noqa: BLE001 - an unreadable old chain is simply not reused
         return None
     return None

@@ -247,7 +247,8 @@ def _initial_walkers(posterior, x0, nwalkers, rng):
 
 def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = None, max_steps: int = 20000,
                      check_every: int = 250, n_tau: float = 50.0, tau_rtol: float = 0.05,
-                     backend_path=None, progress: bool = False, x_map=None, moves: str = "de") -> SamplerResult:
+                     backend_path=None, progress: bool = False, x_map=None, moves: str = "de",
+                     walkers=None) -> SamplerResult:
     """Run emcee until converged (chain > ``n_tau`` τ and τ stable) or ``max_steps``.
 
     Parameters
@@ -260,6 +261,11 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
         emcee HDF5 backend; an existing file with the same walkers and dimension is resumed.
     x_map : array, optional
         Start point (default: :func:`find_map`).
+    walkers : array (nwalkers, ndim), optional
+        A whole starting ensemble, e.g. the final walkers of a previous fit of nearly the same
+        posterior (a refit after a star is added): already spread over the posterior, so no
+        maximisation and no re-expansion from a small ball. Walkers where this posterior is not
+        finite are re-drawn near the ensemble's median.
     moves : {"de", "stretch"}
         emcee proposal: ``"de"`` 80% differential-evolution moves (DEMove; ter Braak 2006) and
         20% emcee's affine-invariant stretch move (Goodman & Weare 2010): autocorrelation times
@@ -293,6 +299,11 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
             resumed = it
         else:
             backend.reset(nwalkers, ndim)
+    if walkers is not None:
+        walkers = np.array(walkers, dtype=float)
+        if walkers.shape != (nwalkers, ndim):
+            raise ValueError(f"walkers: expected shape ({nwalkers}, {ndim}), got {walkers.shape}")
+        x_map = np.median(walkers, axis=0) if x_map is None else x_map
     if x_map is None:
         x_map = find_map(posterior, rng)
     if moves == "de":
@@ -305,6 +316,12 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
     sampler.random_state = np.random.RandomState(int(rng.integers(2**31))).get_state()
     if resumed:
         start = backend.get_last_sample()
+    elif walkers is not None:
+        start = walkers
+        lp = posterior(start)
+        bad = ~np.isfinite(lp)
+        if bad.any():
+            start[bad] = _initial_walkers(posterior, x_map, int(bad.sum()), rng)
     else:
         start = _initial_walkers(posterior, x_map, nwalkers, rng)
     old_tau = np.full(ndim, np.inf)
