@@ -570,10 +570,12 @@ class Likelihood:
         standard deviations are 0.01-0.15 km/s in the default emulator) while the real
         distribution inside a cell is not Gaussian on that scale; with precise velocities the
         likelihood is then dominated by a few stars in the tails and the posterior is far too
-        narrow and biased (measured: error-free 100-star catalogs gave q_z posteriors 0.005
-        wide and missed the true value in 4 of 7 halos). The floor sets the resolution of the
-        model: 0.5-1 km/s restores the right answer there and changes nothing for stars with
-        realistic errors (several km/s). 0 disables it.
+        narrow and biased (measured by ``benchmarks/velocity_floor.py``: error-free 100-star
+        catalogs gave q_z posteriors 0.000-0.008 wide, and in 3 of the 7 halos every median
+        missed the true grid value; 52% success overall, 95% with a 1 km/s floor). The floor
+        sets the resolution of the model and changes nothing for stars with realistic errors
+        (several km/s; the calibration in ``benchmarks/RESULTS.md`` is the same with and
+        without it). 0 disables it.
     """
 
     def __init__(self, emulator, stars: StarTerms, spec: SummarySpec, include_emulator_variance: bool = True,
