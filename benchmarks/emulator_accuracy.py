@@ -1,4 +1,5 @@
-"""Held-out accuracy of an emulator: normalised residuals per statistic.
+"""Held-out accuracy of an emulator: normalised residuals per statistic, and by distance of the
+held-out point from the faces of the training domain.
 
     python benchmarks/emulator_accuracy.py --emulator emulators/default --held-out runs/default2-held-out
 """
@@ -31,6 +32,20 @@ def main():
     for k, n in enumerate(STAT_NAMES):
         print(f"{n:10s} RMS z {np.sqrt(np.mean(zz[..., k]**2)):5.2f}  RMS error {np.sqrt(np.mean(err[..., k]**2)):8.3f}  "
               f"median emulator sd {np.median(sdd[..., k]):8.3f}  median simulation sd {np.median(nv[..., k]):8.3f}")
+    # near the faces of the domain the GP has design points on one side only
+    b = np.asarray(emu.bounds, dtype=float)
+    u = (np.asarray(X, dtype=float) - b[:, 0]) / (b[:, 1] - b[:, 0])
+    dmin = np.min(np.minimum(u, 1 - u), axis=1)
+    for lo, hi in ((0.0, 1 / 16), (1 / 16, 1 / 8), (1 / 8, 1 / 2 + 1e-9)):
+        sel = (dmin >= lo) & (dmin < hi)
+        if sel.any():
+            print(f"distance to the nearest face {lo:.3f}-{min(hi, 0.5):.3f} of the unit cube: {sel.sum():4d} rows, "
+                  f"RMS z {np.sqrt(np.mean(z[sel]**2)):.2f}")
+    for j, n in enumerate(emu.parameter_names):
+        edge = (u[:, j] < 1 / 8) | (u[:, j] > 7 / 8)
+        if edge.any() and (~edge).any():
+            print(f"{n}: rows in the outer eighth of its range RMS z {np.sqrt(np.mean(z[edge]**2)):.2f} "
+                  f"({edge.sum()} rows), the rest {np.sqrt(np.mean(z[~edge]**2)):.2f}")
 
 
 if __name__ == "__main__":
