@@ -278,3 +278,17 @@ def test_linear_distance_propagation_matches_brute_force_integration(rng):
     d_lin = np.diff(lin(a))[0]
     assert abs(d_brute) > 1.0  # the check can fail: the two models are distinguishable
     assert d_lin == pytest.approx(d_brute, rel=0.15)
+
+
+def test_configuration_defaults_match_the_likelihood():
+    """swerve fit's and swerve validate's schemas state the likelihood's defaults and modes."""
+    from swerve.config import defaults
+    from swerve.fit import FIT_SCHEMA
+    from swerve.likelihood import EMULATOR_ERROR_MODES
+    from swerve.validation import VALIDATE_SCHEMA
+
+    fit, val = defaults(FIT_SCHEMA), defaults(VALIDATE_SCHEMA)
+    assert fit["emulator"]["velocity_floor"] == DEFAULT_VELOCITY_FLOOR == val["fit"]["velocity_floor"]
+    assert fit["emulator"]["error"] == val["fit"]["emulator_error"] == EMULATOR_ERROR_MODES[0]
+    choices = {k.name: k.choices for k in VALIDATE_SCHEMA.section("fit").keys}
+    assert tuple(choices["emulator_error"]) == EMULATOR_ERROR_MODES

@@ -141,9 +141,8 @@ def run_forecast(emulator_dir, out_dir, cfg: dict, log=None) -> dict:
 
 def plot_forecast(doc: dict, path):
     """Posterior half-widths of q_z and q_y against N, and the fraction of decisive catalogs."""
-    from .validation import _pyplot
-
     from .plots import sample_size_axis
+    from .validation import _pyplot
 
     plt = _pyplot()
     rows = doc["rows"]

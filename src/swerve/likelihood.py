@@ -598,21 +598,22 @@ class Likelihood:
         self.variance_refresh = float(variance_refresh)
         b = np.asarray(emulator.bounds, dtype=float)
         self._lo, self._span = b[:, 0], b[:, 1] - b[:, 0]
-        self._sd_cache = None  # (unit-cube point, sd row or mean-covariance factor)
+        self._cache = {}  # what -> (unit-cube point where computed, value): "sd", "mean_cov_factor"
         self.parameter_names = list(emulator.parameter_names)
         self._packed = _pack(stars)
         nc = spec.n_cells
         self._mean_idx = (np.arange(nc)[:, None] * (spec.n_outputs // nc) + np.arange(3)[None, :]).ravel()
 
     # ----------------------------------------------------------------- emulator's uncertainty
-    def _cached(self, theta, compute):
+    def _cached(self, theta, what, compute):
         """``compute(centre)`` at the walkers' mean, reused while the mean stays within
         ``variance_refresh`` of the training range (the "ensemble" evaluation)."""
         centre = theta.mean(axis=0, keepdims=True)
         u = (centre[0] - self._lo) / self._span
-        if self._sd_cache is None or np.max(np.abs(u - self._sd_cache[0])) > self.variance_refresh:
-            self._sd_cache = (u, compute(centre))
-        return self._sd_cache[1]
+        hit = self._cache.get(what)
+        if hit is None or np.max(np.abs(u - hit[0])) > self.variance_refresh:
+            hit = self._cache[what] = (u, compute(centre))
+        return hit[1]
 
     def _mean_cov_factor(self, theta):
         """Cholesky factor of the emulator's predictive covariance of the cell means,
@@ -634,7 +635,7 @@ class Likelihood:
 
         if self.emulator_variance == "per-walker" or len(theta) == 1:
             return factor(theta)
-        return self._cached(theta, factor)
+        return self._cached(theta, "mean_cov_factor", factor)
 
     def emulator_correction(self, grad, fisher, Lf) -> np.ndarray:
         """``½ gᵀ (P + E⁻¹)⁻¹ g − ½ log det(I + E P)`` per walker (see ``emulator_error``), with
@@ -671,7 +672,7 @@ class Likelihood:
         else:
             y = self.emulator.predict(theta)
             if fold:
-                sd = np.broadcast_to(self._cached(theta, lambda c: self.emulator.predict(c, return_std=True)[1]),
+                sd = np.broadcast_to(self._cached(theta, "sd", lambda c: self.emulator.predict(c, return_std=True)[1]),
                                      np.shape(y))
         y = np.asarray(y, dtype=float)
         if y.shape[-1] != self.spec.n_outputs:

@@ -701,17 +701,14 @@ def plot_power(power: dict, path):
             if not rows:
                 continue
             n = np.array([r["n_stars"] for r in rows], dtype=float)
-            m = np.array([r["n_catalogs"] for r in rows], dtype=float)
-
-            def bars(p):  # binomial standard error of a success fraction
-                p = np.asarray(p, dtype=float)
-                return np.sqrt(p * (1 - p) / np.maximum(m, 1))
 
             sw = [r["swerve_success"] for r in rows]
-            ax.errorbar(n, sw, yerr=bars(sw), fmt=style, capsize=2, label=f"swerve, {case}")
+            ax.errorbar(n, sw, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(sw, rows)],
+                        fmt=style, capsize=2, label=f"swerve, {case}")
             if case == "axisymmetric":
                 ks = [r["ks_success"] for r in rows]
-                ax.errorbar(n * 1.03, ks, yerr=bars(ks), fmt="^--", capsize=2, label="KS baseline, axisymmetric")
+                ax.errorbar(n * 1.03, ks, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(ks, rows)],
+                            fmt="^--", capsize=2, label="KS baseline, axisymmetric")
         sample_size_axis(ax, [r["n_stars"] for r in power["rows"]])
         ax.set_ylim(0, 1.02)
         ax.set_ylabel("fraction with q_z on the true grid value")
