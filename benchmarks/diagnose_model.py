@@ -1,0 +1,104 @@
+"""Diagnostics behind the "Validation" section of RESULTS.md: how far the per-cell Gaussian is
+from the stars, and where calibration misses sit.
+
+    python benchmarks/diagnose_model.py cells                # a 4000-star mock at the q_z = 1 grid Galaxy
+    python benchmarks/diagnose_model.py edges runs/calibration-floor/validation.json
+
+``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
+power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
+Gaussian (no velocity floor), the Mahalanobis distances of the stars at the truth (χ²₃ for a
+correct model: mean 3, 1% beyond 11.34), and per cell the skewness and excess kurtosis of the
+folded velocities.
+
+``edges``: from a `swerve validate` report, the extreme simulation-based-calibration ranks
+(0, 1, n-1 or n of n draws) of truths in the outer eighth of each parameter's range against the
+rest.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import warnings
+
+import numpy as np
+
+
+def cells(args):
+    from scipy import stats
+
+    from swerve.catalog import catalog_from_table, draw_samples
+    from swerve.emulate import load
+    from swerve.likelihood import Likelihood, prepare_stars, smoothed_samples
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import SummarySpec
+    from swerve.validation import _grid_theta, draw_catalogs, parse_error_model, validation_bank
+
+    emu = load(args.emulator)
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    setup = training_setup_from_dict(emu.metadata["config"])
+    rng = np.random.default_rng(5)
+    names = list(emu.parameter_names)
+    gal_t, lau_t = _grid_theta(setup, emu, 1.0, 1.0)
+    gal = setup.galaxy_at(gal_t)
+    bank = validation_bank(setup, gal, 7)
+    truth = np.array([[{**gal_t, **lau_t}[n] for n in names]])
+    like = None
+    for err in ("none", "pm=0.02,vlos=5,dist=0.1"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            tabs, _ = draw_catalogs(setup, gal, setup.launch_at(lau_t), bank, parse_error_model(err), args.n_stars, 1, rng)
+        cat = catalog_from_table(tabs[0], source="mock")
+        st = prepare_stars(cat, smoothed_samples(cat, draw_samples(cat, 16, rng)), spec)
+        like = Likelihood(emu, st, spec, emulator_error="none", velocity_floor=0.0)
+        mu, sig = like.cell_gaussians(truth)
+        k = np.argmax(st.log_w, axis=1)
+        idx = np.arange(st.n)
+        c, u, C = st.cell[idx, k], st.mean[idx, k], st.cov[idx, k]
+        d = u - mu[0, c]
+        q = np.einsum("ni,ni->n", d, np.linalg.solve(sig[0, c] + C, d[..., None])[..., 0])
+        print(f"errors {err!r}, {st.n} stars: Mahalanobis distance at the truth (most probable sample): "
+              f"mean {q.mean():.1f}, median {np.median(q):.2f}, beyond 11.34: {np.mean(q > 11.34):.3f}, max {q.max():.0f}")
+        for cc in range(spec.n_cells):
+            m = c == cc
+            if m.sum() > 50:
+                print(f"  cell {cc:2d} ({m.sum():4d} stars): skewness v_r {stats.skew(u[m, 0]):5.2f}; excess kurtosis "
+                      + " ".join(f"{stats.kurtosis(u[m, a]):6.2f}" for a in range(3)) + " (v_r, v_θ', v_φ')")
+    sd_min = np.sqrt(np.linalg.eigvalsh(like.cell_gaussians(truth)[1][0])[:, 0])
+    print("smallest standard deviation of each emulated cell Gaussian, km/s:", np.round(sd_min, 2))
+
+
+def edges(args):
+    d = json.load(open(args.report))
+    c = d["calibration"]
+    names = list(c["parameters"])
+    T = np.array(c["truths"], dtype=float)
+    emu_bounds = d["settings"].get("emulator_bounds")
+    from swerve.emulate import load
+
+    b = np.asarray(emu_bounds if emu_bounds else load(d["settings"]["emulator"]).bounds, dtype=float)
+    n_draws = int(c["n_draws"])
+    print(f"{len(T)} catalogs; extreme rank = 0, 1, {n_draws - 1} or {n_draws} of {n_draws} draws "
+          f"({4 / (n_draws + 1):.0%} expected when calibrated)")
+    for j, n in enumerate(names):
+        u = (T[:, j] - b[j, 0]) / (b[j, 1] - b[j, 0])
+        edge = (u < 1 / 8) | (u > 7 / 8)
+        r = np.asarray(c["parameters"][n]["ranks"])
+        ext = (r <= 1) | (r >= n_draws - 1)
+        print(f"{n:8s} edge truths {ext[edge].sum():2d} / {edge.sum():2d} extreme; interior {ext[~edge].sum():2d} / {(~edge).sum():2d}")
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    sub = ap.add_subparsers(dest="what", required=True)
+    a = sub.add_parser("cells")
+    a.add_argument("--emulator", default="emulators/default")
+    a.add_argument("--n-stars", type=int, default=4000)
+    e = sub.add_parser("edges")
+    e.add_argument("report", help="validation.json of a swerve validate run with calibration")
+    args = ap.parse_args()
+    (cells if args.what == "cells" else edges)(args)
+
+
+if __name__ == "__main__":
+    main()
