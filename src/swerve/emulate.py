@@ -38,6 +38,7 @@ import math
 import os
 import shutil
 import tempfile
+import threading
 import uuid
 import warnings
 import zipfile
@@ -144,19 +145,28 @@ def _matern52_from(r5, e, constant, out):  # pragma: no cover - compiled
                 out[g, i, j] = c * ((1.0 + x + x * x / 3.0) * e[g, i, j])
 
 
-def _cross_kernel(xs, XsT, constant, family):
+def _cross_kernel(xs, XsT, constant, family, work=None):
     """Cross-covariance (G, q, n) of every component GP, the same arithmetic as scikit-learn
-    (``exp`` by numpy, as there)."""
+    (``exp`` by numpy, as there). ``work``: optional pair of float arrays of that shape to
+    compute in (the result is one of them)."""
     G, q, _ = xs.shape
-    r = np.empty((G, q, XsT.shape[2]))
+    shape = (G, q, XsT.shape[2])
+    r, e = work if work is not None else (np.empty(shape), np.empty(shape) if family == 0 else None)
     _scaled_distance(xs, XsT, family, r)
     if family == 0:
-        e = np.exp(np.negative(r))
+        np.negative(r, out=e)
+        np.exp(e, out=e)
         _matern52_from(r, e, constant, e)
         return e
     np.exp(r, out=r)
     r *= constant[:, None, None]
     return r
+
+
+#: largest cross-covariance (floats) computed in a reused per-thread buffer: the sampler's
+#: predictions for a few dozen θ would otherwise spend more on fresh pages than on arithmetic
+_WORK_MAX = 1 << 21
+_WORK = threading.local()  # .buf: this thread's pair of scratch arrays (used within one predict call)
 
 
 #: kernel name -> (code of the compiled kernel, scikit-learn builder)
@@ -567,28 +577,38 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             out = [o[0] for o in out]
         return out[0] if len(out) == 1 else tuple(out)
 
+    def _workspace(self, G, q):
+        """This thread's buffers for a (G, q, n_train) cross-covariance, or None when too big."""
+        shape = (G, q, self._XsT.shape[2])
+        if math.prod(shape) > _WORK_MAX:
+            return None
+        buf = getattr(_WORK, "buf", None)
+        if buf is None or buf[0].shape != shape:
+            buf = _WORK.buf = (np.empty(shape), np.empty(shape))
+        return buf
+
     def _predict_block(self, th, want_var, want_cov, include_noise):
         G = self.alpha_.shape[0]
         x = (th - self._lo) / self._span
         xs = np.ascontiguousarray(x[None, :, :] / self.length_scale_[:, None, :])
-        K = _cross_kernel(xs, self._XsT, self.constant_, self._code)
-        # one matrix-vector product per component, as sklearn does (K @ alpha cancels
-        # strongly when alpha is large, so the order of summation matters at ~1e-7)
+        prior = self.constant_ + self.noise_level_ if include_noise else self.constant_
+        K = _cross_kernel(xs, self._XsT, self.constant_, self._code, self._workspace(G, x.shape[0]))
         mt = np.empty((x.shape[0], G))
+        var_t = np.empty((G, x.shape[0])) if want_var else None
         for g in range(G):
+            # one matrix-vector product per component, as sklearn does (K @ alpha cancels
+            # strongly when alpha is large, so the order of summation matters at ~1e-7)
             mt[:, g] = K[g] @ self.alpha_[g]
+            if want_var:
+                v = _dtrsm(1.0, self._Lf[g], K[g].T, lower=1)  # L⁻¹ k*, shape (n, q)
+                # the same order of operations as sklearn (the difference cancels when the
+                # signal variance is large and the point is close to training points)
+                var_t[g] = prior[g] - np.einsum("ij,ji->i", v.T, v)
         pca = self.components_ is not None
         z = mt @ self._W if pca else mt
         mean = self.y_mean_ + self.y_scale_ * z
         if not want_var:
             return (mean,)
-        prior = self.constant_ + self.noise_level_ if include_noise else self.constant_
-        var_t = np.empty((G, x.shape[0]))
-        for g in range(G):
-            v = _dtrsm(1.0, self._Lf[g], K[g].T, lower=1)  # L⁻¹ k*, shape (n, q)
-            # the same order of operations as sklearn (the difference cancels when the
-            # signal variance is large and the point is close to training points)
-            var_t[g] = prior[g] - np.einsum("ij,ji->i", v.T, v)
         var_t = np.maximum(var_t, 0.0).T  # (q, G)
         if not want_cov:
             var_z = (var_t @ self._W2 + self.residual_var_) if pca else var_t

@@ -139,20 +139,30 @@ class Posterior:
 
 def find_map(posterior: Posterior, rng: np.random.Generator, n_starts: int = 2) -> np.ndarray:
     """Maximum a posteriori point: L-BFGS-B (bounded to the prior support) from the best
-    ``n_starts`` of a vectorised batch of 256 random points; returns the best optimum found."""
+    ``n_starts`` of a vectorised batch of 256 random points; returns the best optimum found.
+    Gradients by forward differences, each evaluated as one batch of ndim + 1 points."""
     span = posterior.high - posterior.low
     starts = posterior.low + span * rng.uniform(0.05, 0.95, size=(256, posterior.ndim))
     lp = posterior(starts)
     order = np.argsort(-lp)[:n_starts]
 
-    def f(z):
-        v = posterior(posterior.low + span * z)[0]
-        return -v if np.isfinite(v) else 1e300
+    d = posterior.ndim
+    h = 1e-7  # finite-difference step, in units of each parameter's prior range
+
+    def f_and_grad(z):
+        # the value and a one-sided difference in every direction, in one vectorised call
+        # (d + 1 walkers at once instead of d + 1 calls; away from the bound at 1)
+        step = np.where(z + h <= 1.0, h, -h)
+        pts = np.vstack([z, z + np.diag(step)])
+        v = posterior(posterior.low + span * pts)
+        if not np.all(np.isfinite(v)):
+            return (1e300 if not np.isfinite(v[0]) else -v[0]), np.zeros(d)
+        return -v[0], -(v[1:] - v[0]) / step
 
     best_x, best_v = starts[order[0]], lp[order[0]]
     for j in order:
-        res = optimize.minimize(f, (starts[j] - posterior.low) / span, method="L-BFGS-B",
-                                bounds=[(0.0, 1.0)] * posterior.ndim, options={"maxiter": 500})
+        res = optimize.minimize(f_and_grad, (starts[j] - posterior.low) / span, jac=True, method="L-BFGS-B",
+                                bounds=[(0.0, 1.0)] * d, options={"maxiter": 500})
         if -res.fun > best_v:
             best_v, best_x = -res.fun, posterior.low + span * res.x
     return np.asarray(best_x, dtype=float)
