@@ -1,5 +1,6 @@
-"""Benchmark of the main job: one likelihood call, a converged fit, a refit after adding a star,
-and the brute-force alternative (one forward simulation per likelihood call).
+"""Benchmark of the main job: one likelihood call, a converged fit, a refit after adding a star
+(reweighting the previous chain, and sampling anew), and the brute-force alternative (one forward
+simulation per likelihood call).
 
     python benchmarks/fit.py [--emulator emulators/default] [--n-stars 800] [--samples 64]
 
@@ -100,15 +101,30 @@ def main():
         t0 = time.perf_counter()
         a = run_fit(path_less, args.emulator, out, cfg)
         t_fit = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        b = run_fit(path_all, args.emulator, out, cfg)
-        t_refit = time.perf_counter() - t0
         print(f"converged fit of {a.summary['stars']['used']} stars: {t_fit:.1f} s wall "
               f"(converged: {a.summary['sampler']['converged']}, {a.summary['sampler']['n_steps']} steps)")
-        print(f"refit after adding one star: {t_refit:.1f} s wall (terms reused: {b.summary['stars']['terms_reused']}, "
-              f"converged: {b.summary['sampler']['converged']}, {b.summary['sampler']['n_steps']} steps)")
-        for n, p in b.summary["parameters"].items():
-            print(f"  {n}: {p['median']:.4g} [{p['ci95'][0]:.4g}, {p['ci95'][1]:.4g}] (truth {truth.get(n)})")
+        # the refit both ways: the default reweights the previous chain; "sample" samples anew
+        # from its final walkers (each from a copy of the first fit's folder)
+        import shutil
+
+        results = {}
+        for mode in ("reweight", "sample"):
+            folder = Path(tmp) / f"refit-{mode}"
+            shutil.copytree(out, folder)
+            cfg_m = load_fit_config(None, {"errors": {"samples": args.samples}, "sampler": {"refit": mode}})
+            t0 = time.perf_counter()
+            b = results[mode] = run_fit(path_all, args.emulator, folder, cfg_m)
+            t_refit = time.perf_counter() - t0
+            smp = b.summary["sampler"]
+            how = (f"reweighted: effective sample size {smp['importance']['ess']:.0f} of "
+                   f"{smp['importance']['n_samples']}, Pareto k {smp['importance']['pareto_k']:.2f}"
+                   if smp["method"] == "reweighted" else f"sampled: {smp['n_steps']} steps, converged {smp['converged']}")
+            print(f"refit after adding one star, refit = {mode!r}: {t_refit:.1f} s wall "
+                  f"(terms reused: {b.summary['stars']['terms_reused']}; {how})")
+        for n, p in results["reweight"].summary["parameters"].items():
+            q = results["sample"].summary["parameters"][n]
+            print(f"  {n}: reweighted {p['median']:.4g} [{p['ci95'][0]:.4g}, {p['ci95'][1]:.4g}], "
+                  f"sampled {q['median']:.4g} [{q['ci95'][0]:.4g}, {q['ci95'][1]:.4g}] (truth {truth.get(n)})")
 
 
 if __name__ == "__main__":

@@ -59,18 +59,68 @@ def test_refit_after_adding_a_star_reuses_the_others(tmp_path, smoke_run, mock_c
     first = tmp_path / "first.ecsv"
     full[:-1].write(first, format="ascii.ecsv")
     out = tmp_path / "fit"
-    cfg = load_fit_config(None, FAST)
+    cfg = load_fit_config(None, {**FAST, "sampler": {**FAST["sampler"], "refit": "sample"}})
     a = run_fit(first, emu, out, cfg)
     b = run_fit(mock_catalog, emu, out, cfg)
     n_used_a = a.summary["stars"]["used"]
     assert b.summary["stars"]["terms_reused"] == n_used_a
     assert any("data or configuration changed" in n for n in b.summary["notes"])
+    assert b.summary["sampler"]["method"] == "sampled"
     # the reused terms equal a fresh computation
     fresh = tmp_path / "fresh"
     c = run_fit(mock_catalog, emu, fresh, cfg)
     za, zc = np.load(out / "stars.npz"), np.load(fresh / "stars.npz")
     np.testing.assert_array_equal(za["mean"], zc["mean"])
     assert c.summary["stars"]["terms_reused"] == 0
+
+
+REWEIGHT = {**FAST, "sampler": {**FAST["sampler"], "max_steps": 1500, "check_every": 250, "n_tau": 20.0,
+                                 "tau_rtol": 0.3}}
+
+
+def test_refit_reweights_the_previous_chain(tmp_path, smoke_run, mock_catalog):
+    """A star added to a converged fit: the chain is kept and importance-reweighted by it, no
+    new sampling, and the answer agrees with a fresh fit of all the stars (the weights'
+    correctness itself is checked against analytic Gaussians in tests/test_sampling.py)."""
+    import emcee
+
+    _, emu = smoke_run
+    full = Table.read(mock_catalog)
+    first = tmp_path / "first.ecsv"
+    full[:-1].write(first, format="ascii.ecsv")
+    out = tmp_path / "fit"
+    cfg = load_fit_config(None, REWEIGHT)
+    a = run_fit(first, emu, out, cfg)
+    assert a.summary["sampler"]["converged"] and a.summary["sampler"]["method"] == "sampled"
+    steps = emcee.backends.HDFBackend(str(out / "chain.h5"), read_only=True).iteration
+    b = run_fit(mock_catalog, emu, out, cfg)
+    smp = b.summary["sampler"]
+    assert smp["method"] == "reweighted" and smp["importance"]["stars_added"] == 1
+    assert smp["importance"]["ess"] >= 0.5 * smp["importance"]["n_samples"]
+    assert any("reweighted by the 1 added star" in n for n in b.summary["notes"])
+    assert "reweighted by 1 added star" in b.terminal
+    assert emcee.backends.HDFBackend(str(out / "chain.h5"), read_only=True).iteration == steps  # not resampled
+    fresh = run_fit(mock_catalog, emu, tmp_path / "fresh", cfg)
+    for n, p in fresh.summary["parameters"].items():
+        q = b.summary["parameters"][n]
+        assert abs(q["median"] - p["median"]) < 0.5 * p["std"], n
+        assert 0.7 < q["std"] / p["std"] < 1.4, n
+
+
+def test_refit_falls_back_to_sampling_when_weights_are_unreliable(tmp_path, smoke_run, mock_catalog, monkeypatch):
+    import swerve.sampling
+
+    _, emu = smoke_run
+    full = Table.read(mock_catalog)
+    first = tmp_path / "first.ecsv"
+    full[:-1].write(first, format="ascii.ecsv")
+    out = tmp_path / "fit"
+    cfg = load_fit_config(None, REWEIGHT)
+    run_fit(first, emu, out, cfg)
+    monkeypatch.setattr(swerve.sampling, "MIN_ESS_FRACTION", 2.0)  # no weights can pass
+    b = run_fit(mock_catalog, emu, out, cfg)
+    assert b.summary["sampler"]["method"] == "sampled"
+    assert any("was not reliable" in n for n in b.summary["notes"])
 
 
 def test_interrupted_fit_resumes(tmp_path, smoke_run, mock_catalog):

@@ -8,8 +8,11 @@ recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampli
 Run folder (``--out``)::
 
     chain.h5        emcee HDF5 backend (an interrupted fit resumes from it)
-    chain.key       what the chain belongs to (stars, configuration, emulator hash): a chain
-                    of other data is not resumed but restarted from its last walkers
+    chain.key       what the chain belongs to (its stars, configuration, emulator hash, swerve
+                    version, whether it converged): a chain of other data is not resumed. When
+                    stars were only added to a converged chain's, the chain is kept and
+                    importance-reweighted by the new stars (``[sampler] refit``), else a new
+                    chain starts from its last walkers
     stars.npz       the θ-independent terms of every star, with a hash of its inputs
     summary.json    per parameter: median, 68% / 95% credible intervals; P(q_z < 1), P(q_y < 1);
                     autocorrelation times, acceptance, convergence
@@ -66,6 +69,9 @@ FIT_SCHEMA = Schema("fit", (
         Key("n_tau", "float", 50.0, min=1.0, doc="converged when the chain is longer than n_tau x tau ..."),
         Key("tau_rtol", "float", 0.05, min=0.0, doc="... and tau changed by less than this fraction"),
         Key("seed", "int", 1, min=0, doc="seed of the sampler"),
+        Key("refit", "str", "reweight", choices=("reweight", "sample"),
+            doc="after stars are added to a converged fit in the same folder: importance-reweight its chain by the "
+                "new stars (seconds; falls back to sampling when the weights are unreliable) or always sample anew"),
     )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
@@ -137,9 +143,10 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
     cached = {}
     if cache_path is not None and Path(cache_path).is_file():
         try:
-            with np.load(cache_path, allow_pickle=False) as z:
-                for j, hsh in enumerate(z["hash"]):
-                    cached[str(hsh)] = (z["cell"][j], z["mean"][j], z["cov"][j], z["log_w"][j])
+            with np.load(cache_path, allow_pickle=False) as z:  # each z[name] reads the file: once each
+                hsh, cell, mean, cov, log_w = (z[k] for k in ("hash", "cell", "mean", "cov", "log_w"))
+            for j, h in enumerate(hsh):
+                cached[str(h)] = (cell[j], mean[j], cov[j], log_w[j])
         except (OSError, KeyError, ValueError):
             cached = {}
     cells, means, covs, logws, keep_hash, ids, excluded = [], [], [], [], [], [], []
@@ -244,37 +251,61 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                                + content_hash(emulator_path)).encode()).hexdigest()
     chain = out_dir / "chain.h5"
     state_file = out_dir / "chain.key"
-    previous_start = None
-    if chain.exists() and (not state_file.exists() or state_file.read_text().strip() != data_key):
-        previous_start = _last_walkers(chain, post.ndim)
-        chain.unlink()
-        notes.append("the data or configuration changed since the chain in this folder: a new chain was "
-                     "started from the previous one's final walkers")
-    state_file.write_text(data_key)
+    # what the chain's target is apart from its stars (reweighting needs this to be unchanged)
+    target_key = hashlib.sha256((json.dumps(key_cfg, sort_keys=True, default=str) + content_hash(emulator_path)
+                                 + __version__).encode()).hexdigest()
+    state = _read_state(state_file)
+    res = previous_start = None
     t1 = time.perf_counter()
     # BLAS on one thread while sampling: the emulator's matrices are small (threads only add
     # overhead, 5x measured) and the compiled likelihood kernel already uses every core
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
-        res = _sample(sample_posterior, post, s, chain, progress, previous_start)
+        if chain.exists() and (state is None or state["key"] != data_key):
+            added = _stars_added(state, terms.ids, target_key)
+            if added and s["refit"] == "reweight":
+                res, start, why = _reweight(chain, state, post, terms, s, like_options=dict(
+                    emulator=emu, spec=spec, include_emulator_variance=cfg["emulator"]["include_variance"],
+                    emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
+                    velocity_floor=cfg["emulator"]["velocity_floor"]), priors=priors)
+                if res is not None:
+                    notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
+                                 f"by the {len(added)} added star(s) ({why}); no new sampling")
+                else:
+                    notes.append(f"refit: reweighting the previous chain by the {len(added)} added star(s) was "
+                                 f"not reliable ({why}); a new chain was started from the reweighted samples")
+                    previous_start = start
+            if res is None:
+                if previous_start is None:
+                    previous_start = _last_walkers(chain, post.ndim)
+                    notes.append("the data or configuration changed since the chain in this folder: a new chain "
+                                 "was started from the previous one's final walkers")
+                chain.unlink()
+        if res is None:
+            _write_state(state_file, data_key, target_key, terms.ids, converged=False)
+            res = _sample(sample_posterior, post, s, chain, progress, previous_start)
+            _write_state(state_file, data_key, target_key, terms.ids, converged=res.converged)
     t_sample = time.perf_counter() - t1
 
-    summ = credible_summary(res.samples, res.names)
+    summ = credible_summary(res.samples, res.names, res.weights)
     for j, n in enumerate(res.names):
         summ[n]["tau"] = float(res.tau[j])
     fixed = {p.name: p.value for p in priors if p.kind == "fixed"}
     probs = {}
+    w = res.weights if res.weights is not None else np.full(len(res.samples), 1.0 / len(res.samples))
     for q in ("q_z", "q_y"):
         if q in res.names:
-            probs[f"P({q}<1)"] = float(np.mean(res.samples[:, res.names.index(q)] < 1.0))
+            probs[f"P({q}<1)"] = float(np.sum(w * (res.samples[:, res.names.index(q)] < 1.0)))
     summary = {
         "parameters": summ,
         "fixed": fixed,
         "probabilities": probs,
         "sampler": {"n_walkers": res.n_walkers, "n_steps": res.n_steps, "burn_in": res.burn_in, "thin": res.thin,
                     "acceptance": res.acceptance, "converged": res.converged, "resumed_from": res.resumed_from,
-                    "n_samples": int(len(res.samples))},
+                    "n_samples": int(len(res.samples)),
+                    "method": "reweighted" if res.weights is not None else "sampled",
+                    "importance": res.importance},
         "stars": {"used": terms.n, "excluded": terms.excluded, "terms_reused": reused},
         "timing_s": {"star_terms": round(t_terms, 2), "sampling": round(t_sample, 2),
                      "total": round(time.perf_counter() - t_start, 2)},
@@ -300,6 +331,78 @@ def _sample(sample_posterior, post, s, chain, progress, start):
     return sample_posterior(post, seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=s["max_steps"],
                             check_every=s["check_every"], n_tau=s["n_tau"], tau_rtol=s["tau_rtol"],
                             backend_path=chain, progress=progress, x_map=x_map, walkers=walkers)
+
+
+def _read_state(path):
+    """The run folder's record of what its chain belongs to, or None (absent or unreadable;
+    a plain-text key from before the record held more is read as its key alone)."""
+    try:
+        text = Path(path).read_text().strip()
+    except OSError:
+        return None
+    try:
+        st = json.loads(text)
+    except ValueError:
+        return {"key": text}
+    return st if isinstance(st, dict) and "key" in st else None
+
+
+def _write_state(path, key, target_key, ids, converged):
+    _write_json(path, {"key": key, "target": target_key, "converged": bool(converged),
+                       "stars": sorted(map(str, ids))})
+
+
+def _stars_added(state, ids, target_key):
+    """The stars added since a converged chain of the same target (configuration, emulator,
+    swerve version), if the new stars are the old ones and more; else an empty list."""
+    if not state or state.get("target") != target_key or not state.get("converged"):
+        return []
+    old, new = set(state.get("stars", ())), set(map(str, ids))
+    return sorted(new - old) if old and old < new else []
+
+
+def _reweight(chain, state, post, terms, s, like_options, priors):
+    """Importance-reweight a converged chain of a subset of the stars by the added stars.
+
+    The ratio of the new to the old posterior is evaluated at every retained sample of the old
+    chain (burn-in discarded, thinned as a fit thins it), both posteriors in the same batches so
+    the emulator-variance cache is the same for both. Returns ``(result, None, diagnostics)``
+    when the weights are reliable (:class:`swerve.sampling.ImportanceWeights`), else ``(None,
+    start, diagnostics)`` with ``start`` walkers drawn from the reweighted samples."""
+    import emcee
+
+    from .likelihood import Likelihood
+    from .sampling import Posterior, SamplerResult, importance_weights
+
+    b = emcee.backends.HDFBackend(str(chain), read_only=True)
+    n_steps = int(b.iteration)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        tau = np.asarray(b.get_autocorr_time(tol=0), dtype=float)
+    tmax = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else n_steps / 10
+    burn = int(min(n_steps // 2, np.ceil(2 * tmax)))
+    thin = max(1, int(tmax // 2))
+    x = b.get_chain(discard=burn, thin=thin, flat=True)
+    old = np.flatnonzero(np.isin(terms.ids.astype(str), list(state["stars"])))
+    post_old = Posterior(Likelihood(stars=terms.subset(old), **like_options), priors)
+    lp_new, lp_old = np.empty(len(x)), np.empty(len(x))
+    for i in range(0, len(x), 64):
+        lp_new[i:i + 64] = post(x[i:i + 64])
+        lp_old[i:i + 64] = post_old(x[i:i + 64])
+    iw = importance_weights(lp_new - lp_old)
+    why = f"effective sample size {iw.ess:.0f} of {iw.n}, Pareto k {iw.pareto_k:.2f}"
+    if not iw.reliable:
+        rng = np.random.default_rng(s["seed"])
+        nw = b.shape[0]
+        replace = np.count_nonzero(iw.weights) < nw
+        start = x[rng.choice(len(x), size=nw, replace=replace, p=iw.weights)] if not replace else None
+        return None, start, why
+    res = SamplerResult(
+        samples=x, log_prob=lp_new, tau=tau, acceptance=float(np.mean(b.accepted / max(n_steps, 1))),
+        n_steps=n_steps, n_walkers=int(b.shape[0]), converged=True, burn_in=burn, thin=thin,
+        x_map=x[np.argmax(lp_new)], names=list(post.free_names), weights=iw.weights,
+        importance={"ess": iw.ess, "pareto_k": iw.pareto_k, "n_samples": iw.n,
+                    "stars_added": int(terms.n - len(old)), "chain_stars": len(old)})
+    return res, None, why
 
 
 def _last_walkers(chain, ndim):
@@ -385,8 +488,9 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
     _write_json(out_dir / "fit.json", fit_record)
 
     truth = _truth_from_meta(catalog.meta, res.names)
-    plots.corner_plot(res.samples, res.names, out_dir / "corner.png", truths=truth)
-    draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=min(200, len(res.samples)), replace=False)]
+    plots.corner_plot(res.samples, res.names, out_dir / "corner.png", truths=truth, weights=res.weights)
+    n_draw = min(200, len(res.samples), int(np.count_nonzero(res.weights)) if res.weights is not None else len(res.samples))
+    draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=n_draw, replace=False, p=res.weights)]
     mu, sig = like.cell_gaussians(post.full(draws))
     plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png")
 
@@ -415,7 +519,13 @@ def terminal_summary(summary, catalog_path, emulator_path) -> str:
              f"  stars used: {summary['stars']['used']}, excluded: {len(summary['stars']['excluded'])}"
              + (f", reused from the last fit: {summary['stars']['terms_reused']}" if summary['stars']['terms_reused'] else ""),
              f"  chain: {s['n_walkers']} walkers x {s['n_steps']} steps, acceptance {s['acceptance']:.2f}, "
-             + ("converged" if s["converged"] else "NOT converged (step cap hit)"), ""]
+             + ("converged" if s["converged"] else "NOT converged (step cap hit)")]
+    imp = s.get("importance")
+    if imp:
+        lines.append(f"  refit: that chain (of {imp['chain_stars']} stars) reweighted by {imp['stars_added']} added "
+                     f"star(s): effective sample size {imp['ess']:.0f} of {imp['n_samples']}, "
+                     f"Pareto k {imp['pareto_k']:.2f}")
+    lines.append("")
     lines.append(f"  {'parameter':<10} {'median':>11} {'68% interval':>26} {'95% interval':>26} {'tau':>6}")
     for n, p in summary["parameters"].items():
         lines.append(f"  {n:<10} {p['median']:11.4g} [{p['ci68'][0]:11.4g}, {p['ci68'][1]:11.4g}] "

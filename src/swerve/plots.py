@@ -76,8 +76,9 @@ _LABELS = {
 _SCALE = {"m_halo": 1e12, "m_disk": 1e11}
 
 
-def corner_plot(samples, names, path, truths=None):
-    """Corner plot of posterior samples (the corner package), with true values if known."""
+def corner_plot(samples, names, path, truths=None, weights=None):
+    """Corner plot of posterior samples (the corner package), with true values if known and
+    importance weights if the samples carry them."""
     import corner
 
     plt = _pyplot()
@@ -87,7 +88,7 @@ def corner_plot(samples, names, path, truths=None):
     if truths is not None:
         truths = [None if t is None else t / s_ for t, s_ in zip(truths, scale)]
     fig = corner.corner(
-        samples, labels=labels, truths=truths, quantiles=[0.16, 0.5, 0.84], show_titles=True,
+        samples, weights=weights, labels=labels, truths=truths, quantiles=[0.16, 0.5, 0.84], show_titles=True,
         title_fmt=".3g", levels=(0.393, 0.865), plot_datapoints=False, fill_contours=True,
         color="#1f4e79", truth_color="#c0392b",
     )
