@@ -4,6 +4,8 @@ sampling, and the run folder a researcher reads.
 Data flow: catalog (validated) -> per-star distance samples and analytic velocity moments
 (:mod:`swerve.likelihood`, cached per star in the run folder, so a refit after a star is added
 recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampling`) -> results.
+A refit after stars are added to a converged fit reweights that fit's chain by the new stars
+(importance sampling, :func:`swerve.sampling.importance_weights`) instead of sampling again.
 
 Run folder (``--out``)::
 

@@ -30,8 +30,8 @@ is one error shared by all stars, so it is marginalised at the level of the cata
 star: ``log L(θ) = Σ_i log L_i(θ) + Δ(θ)`` with ``Δ`` the Gaussian integral over that error
 (:class:`Likelihood`, ``emulator_error``). Everything that does not depend on θ (cells,
 ``m_ik``, ``C_ik``, ``w_ik``) is computed once, in :func:`prepare_stars`; one likelihood call
-is one emulator prediction, one compiled loop, parallel over walkers, and one small dense
-solve per walker.
+is one emulator prediction, one compiled loop (vectorised over blocks of 16 walkers, parallel
+over those blocks and chunks of stars), and one small dense solve per walker.
 
 Stars outside the emulator's selection are never silently used: a star with less than half of
 its sample weight inside the cells, or moving inward (v_r < 0), is excluded and reported.

@@ -29,8 +29,10 @@ def add_parser(sub):
             "draw each star's distance samples, and sample the posterior of the emulator's parameters "
             "with emcee until converged. Writes the chain, summary.json/.ecsv, stars.ecsv, corner.png, "
             "ppc.png and fit.json to --out. Rerunning into the same folder reuses every unchanged "
-            "star's terms (a refit after a star is added recomputes only that star) and resumes an "
-            "interrupted chain. With --variants, run several nuisance variants side by side."
+            "star's terms and resumes an interrupted chain; after stars are added to a converged fit it "
+            "importance-reweights the existing chain by them (seconds) instead of sampling again, "
+            "unless the weights are unreliable ([sampler] refit). With --variants, run several "
+            "nuisance variants side by side."
         ),
     )
     p.add_argument("catalog", metavar="CATALOG", nargs="?", help="observed (or mock) catalog")
