@@ -53,14 +53,18 @@ def test_fit_writes_the_run_folder(tmp_path, smoke_run, mock_catalog):
     assert "q_z" in outcome.terminal and "68% interval" in outcome.terminal
 
 
+def _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg):
+    """Fit the mock less its last star into ``out`` (the first fit of a refit test)."""
+    first = tmp_path / "first.ecsv"
+    Table.read(mock_catalog)[:-1].write(first, format="ascii.ecsv")
+    return run_fit(first, emu, out, cfg)
+
+
 def test_refit_after_adding_a_star_reuses_the_others(tmp_path, smoke_run, mock_catalog):
     _, emu = smoke_run
-    full = Table.read(mock_catalog)
-    first = tmp_path / "first.ecsv"
-    full[:-1].write(first, format="ascii.ecsv")
     out = tmp_path / "fit"
     cfg = load_fit_config(None, {**FAST, "sampler": {**FAST["sampler"], "refit": "sample"}})
-    a = run_fit(first, emu, out, cfg)
+    a = _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg)
     b = run_fit(mock_catalog, emu, out, cfg)
     n_used_a = a.summary["stars"]["used"]
     assert b.summary["stars"]["terms_reused"] == n_used_a
@@ -85,12 +89,9 @@ def test_refit_reweights_the_previous_chain(tmp_path, smoke_run, mock_catalog):
     import emcee
 
     _, emu = smoke_run
-    full = Table.read(mock_catalog)
-    first = tmp_path / "first.ecsv"
-    full[:-1].write(first, format="ascii.ecsv")
     out = tmp_path / "fit"
     cfg = load_fit_config(None, REWEIGHT)
-    a = run_fit(first, emu, out, cfg)
+    a = _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg)
     assert a.summary["sampler"]["converged"] and a.summary["sampler"]["method"] == "sampled"
     steps = emcee.backends.HDFBackend(str(out / "chain.h5"), read_only=True).iteration
     b = run_fit(mock_catalog, emu, out, cfg)
@@ -111,12 +112,9 @@ def test_refit_falls_back_to_sampling_when_weights_are_unreliable(tmp_path, smok
     import swerve.sampling
 
     _, emu = smoke_run
-    full = Table.read(mock_catalog)
-    first = tmp_path / "first.ecsv"
-    full[:-1].write(first, format="ascii.ecsv")
     out = tmp_path / "fit"
     cfg = load_fit_config(None, REWEIGHT)
-    run_fit(first, emu, out, cfg)
+    _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg)
     monkeypatch.setattr(swerve.sampling, "MIN_ESS_FRACTION", 2.0)  # no weights can pass
     b = run_fit(mock_catalog, emu, out, cfg)
     assert b.summary["sampler"]["method"] == "sampled"

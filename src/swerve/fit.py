@@ -237,9 +237,10 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     t0 = time.perf_counter()
     terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
     t_terms = time.perf_counter() - t0
-    like = Likelihood(emu, terms, spec, include_emulator_variance=cfg["emulator"]["include_variance"],
-                      emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
-                      velocity_floor=cfg["emulator"]["velocity_floor"])
+    like_options = dict(emulator=emu, spec=spec, include_emulator_variance=cfg["emulator"]["include_variance"],
+                        emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
+                        velocity_floor=cfg["emulator"]["velocity_floor"])
+    like = Likelihood(stars=terms, **like_options)
     names = list(emu.parameter_names)
     bounds = np.asarray(emu.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
@@ -267,10 +268,7 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
         if chain.exists() and (state is None or state["key"] != data_key):
             added = _stars_added(state, terms.ids, target_key)
             if added and s["refit"] == "reweight":
-                res, start, why = _reweight(chain, state, post, terms, s, like_options=dict(
-                    emulator=emu, spec=spec, include_emulator_variance=cfg["emulator"]["include_variance"],
-                    emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
-                    velocity_floor=cfg["emulator"]["velocity_floor"]), priors=priors)
+                res, start, why = _reweight(chain, state, post, terms, s, like_options, priors)
                 if res is not None:
                     notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
                                  f"by the {len(added)} added star(s) ({why}); no new sampling")
@@ -374,15 +372,13 @@ def _reweight(chain, state, post, terms, s, like_options, priors):
     import emcee
 
     from .likelihood import Likelihood
-    from .sampling import Posterior, SamplerResult, importance_weights
+    from .sampling import Posterior, SamplerResult, burn_and_thin, importance_weights
 
     b = emcee.backends.HDFBackend(str(chain), read_only=True)
     n_steps = int(b.iteration)
     with np.errstate(invalid="ignore", divide="ignore"):
         tau = np.asarray(b.get_autocorr_time(tol=0), dtype=float)
-    tmax = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else n_steps / 10
-    burn = int(min(n_steps // 2, np.ceil(2 * tmax)))
-    thin = max(1, int(tmax // 2))
+    burn, thin = burn_and_thin(tau, n_steps)  # as the fit that made the chain
     x = b.get_chain(discard=burn, thin=thin, flat=True)
     old = np.flatnonzero(np.isin(terms.ids.astype(str), list(state["stars"])))
     post_old = Posterior(Likelihood(stars=terms.subset(old), **like_options), priors)
@@ -393,10 +389,10 @@ def _reweight(chain, state, post, terms, s, like_options, priors):
     iw = importance_weights(lp_new - lp_old)
     why = f"effective sample size {iw.ess:.0f} of {iw.n}, Pareto k {iw.pareto_k:.2f}"
     if not iw.reliable:
-        rng = np.random.default_rng(s["seed"])
         nw = b.shape[0]
-        replace = np.count_nonzero(iw.weights) < nw
-        start = x[rng.choice(len(x), size=nw, replace=replace, p=iw.weights)] if not replace else None
+        if np.count_nonzero(iw.weights) < nw:  # too few distinct samples for an ensemble
+            return None, None, why
+        start = x[np.random.default_rng(s["seed"]).choice(len(x), size=nw, replace=False, p=iw.weights)]
         return None, start, why
     res = SamplerResult(
         samples=x, log_prob=lp_new, tau=tau, acceptance=float(np.mean(b.accepted / max(n_steps, 1))),

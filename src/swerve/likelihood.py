@@ -419,7 +419,7 @@ def _bits_to_float(typingctx, bits):
 _LOG2E = 1.4426950408889634
 _LN2_HI = 6.93147180369123816490e-01  # ln 2 split so that t * _LN2_HI is exact (fdlibm's split)
 _LN2_LO = 1.90821492927058770002e-10
-#: below this argument :func:`fast_exp` returns 0 (exp(-708) ≈ 3e-308, the smallest normal double)
+#: below this argument :func:`fast_exp` returns 0 (exp(-708) ≈ 3.3e-308, just above the smallest normal double)
 FAST_EXP_MIN = -708.0
 
 
@@ -686,7 +686,7 @@ def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, 
     acc = 0.0
     for v in vals:
         acc += math.exp(v - best)
-    return best + math.log(acc) - 1.5 * 1.8378770664093453
+    return best + math.log(acc) - 1.5 * _LOG_2PI
 
 
 # ------------------------------------------------------------------------------ likelihood ----

@@ -361,9 +361,7 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
             f"the intervals may be unreliable: raise max_steps",
             ConvergenceWarning, stacklevel=2,
         )
-    tmax = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else n_steps / 10
-    burn = int(min(n_steps // 2, math.ceil(2 * tmax)))
-    thin = max(1, int(tmax // 2))
+    burn, thin = burn_and_thin(tau, n_steps)
     flat = sampler.get_chain(discard=burn, thin=thin, flat=True)
     lp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
     return SamplerResult(
@@ -380,6 +378,14 @@ def weighted_percentile(x, weights, q) -> np.ndarray:
     xs, w = np.asarray(x, dtype=float)[order], np.asarray(weights, dtype=float)[order]
     cdf = (np.cumsum(w) - 0.5 * w) / np.sum(w)
     return np.interp(np.asarray(q, dtype=float) / 100.0, cdf, xs)
+
+
+def burn_and_thin(tau, n_steps: int) -> tuple[int, int]:
+    """Burn-in (2 τ_max, at most half the chain) and thinning (τ_max / 2) of a chain of
+    ``n_steps`` with autocorrelation times ``tau`` (τ_max = n_steps / 10 if none is finite)."""
+    tau = np.asarray(tau, dtype=float)
+    tmax = float(np.nanmax(tau)) if np.any(np.isfinite(tau)) else n_steps / 10
+    return int(min(n_steps // 2, math.ceil(2 * tmax))), max(1, int(tmax // 2))
 
 
 def credible_summary(samples: np.ndarray, names, weights=None) -> dict:
