@@ -3,12 +3,19 @@ from the stars, and where calibration misses sit.
 
     python benchmarks/diagnose_model.py cells                # a 4000-star mock at the q_z = 1 grid Galaxy
     python benchmarks/diagnose_model.py edges runs/calibration-floor/validation.json
+    python benchmarks/diagnose_model.py shape                # v_r and deflection shapes, no errors
 
 ``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
 power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
 Gaussian (no velocity floor), the Mahalanobis distances of the stars at the truth (χ²₃ for a
 correct model: mean 3, 1% beyond 11.34), and per cell the skewness and excess kurtosis of the
 folded velocities.
+
+``shape``: the error-free selected population of the grid Galaxy (q_y = q_z = 1, or
+``--q-z``) at three launch slopes: per cell holding >= 2% of the stars, the weighted mean,
+standard deviation, skewness and excess kurtosis of v_r and the fraction a Gaussian of those
+moments puts below v_r = 0; then, at slope -0.5, the mean and spread of v_tf in bands of v_r
+against the cell Gaussian's linear regression and its single conditional spread.
 
 ``edges``: from a `swerve validate` report, the extreme simulation-based-calibration ranks
 (0, 1, n-1 or n of n draws) of truths in the outer eighth of each parameter's range against the
@@ -68,6 +75,66 @@ def cells(args):
     print("smallest standard deviation of each emulated cell Gaussian, km/s:", np.round(sd_min, 2))
 
 
+def shape(args):
+    from scipy.stats import norm
+
+    from swerve.emulate import load
+    from swerve.population import population_from_bank
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import SummarySpec, folded_components
+    from swerve.validation import _grid_theta, validation_bank
+
+    emu = load(args.emulator)
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    setup = training_setup_from_dict(emu.metadata["config"])
+    gal_t, _ = _grid_theta(setup, emu, 1.0, args.q_z)
+    gal = setup.galaxy_at(gal_t)
+    bank = validation_bank(setup, gal, 7)
+    for slope in (-1.5, -0.5, 0.5):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            pop = population_from_bank(bank, setup.launch_at({"slope": slope}), selection=setup.selection,
+                                       galaxy=gal, flight_time_max=setup.flight_time_max,
+                                       rng=np.random.default_rng(1))
+        u = folded_components(pop.pos, pop.vel)
+        w = pop.weight / pop.weight.sum()
+        c = spec.cell_index(pop.pos)
+        print(f"slope {slope}: v_r per cell (fraction of stars, mean, sd, skewness, excess kurtosis, "
+              f"Gaussian mass below 0)")
+        for cc in range(spec.n_cells):
+            m = c == cc
+            if w[m].sum() < 0.02:
+                continue
+            ww, x = w[m] / w[m].sum(), u[m, 0]
+            mu = ww @ x
+            sd = np.sqrt(ww @ (x - mu) ** 2)
+            z = (x - mu) / sd
+            print(f"  cell {cc:2d}  {w[m].sum():.3f}  {mu:6.0f}  {sd:5.0f}  {ww @ z**3:5.2f}  {ww @ z**4 - 3:5.2f}  "
+                  f"{norm.cdf(-mu / sd):.3f}")
+        if slope != -0.5:
+            continue
+        edges_ = np.array([0, 300, 600, 900, 1200, 1600, 2000, 3200.0])
+        print("  v_tf in v_r bands " + str(edges_.tolist()) + ": band mean / cell Gaussian's regression mean / band sd")
+        for cc in range(spec.n_cells):
+            m = c == cc
+            if w[m].sum() < 0.02:
+                continue
+            ww, x = w[m] / w[m].sum(), u[m]
+            mu = ww @ x
+            C = ((x - mu) * ww[:, None]).T @ (x - mu)
+            b = C[1, 0] / C[0, 0]
+            line = []
+            for lo, hi in zip(edges_[:-1], edges_[1:]):
+                sel = (x[:, 0] >= lo) & (x[:, 0] < hi)
+                if ww[sel].sum() < 0.01:
+                    line.append("   --")
+                    continue
+                wv = ww[sel] / ww[sel].sum()
+                mt = wv @ x[sel, 1]
+                line.append(f"{mt:5.1f}/{mu[1] + b * (wv @ x[sel, 0] - mu[0]):5.1f}/{np.sqrt(wv @ (x[sel, 1] - mt) ** 2):4.1f}")
+            print(f"  cell {cc:2d} conditional sd {np.sqrt(C[1, 1] - C[1, 0] ** 2 / C[0, 0]):5.1f}: " + " ".join(line))
+
+
 def edges(args):
     d = json.load(open(args.report))
     c = d["calibration"]
@@ -94,10 +161,13 @@ def main():
     a = sub.add_parser("cells")
     a.add_argument("--emulator", default="emulators/default")
     a.add_argument("--n-stars", type=int, default=4000)
+    sh = sub.add_parser("shape")
+    sh.add_argument("--emulator", default="emulators/default")
+    sh.add_argument("--q-z", type=float, default=1.0)
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
-    (cells if args.what == "cells" else edges)(args)
+    {"cells": cells, "shape": shape, "edges": edges}[args.what](args)
 
 
 if __name__ == "__main__":

@@ -26,12 +26,23 @@ def main():
     m, sd = emu.predict(X, return_std=True)
     z = (m - Y) / np.sqrt(sd**2 + V)
     print(f"{len(X)} held-out rows; overall RMS z {np.sqrt(np.mean(z**2)):.2f}")
-    nc = setup.spec.n_cells
-    zz, err = z.reshape(len(z), nc, 9), (m - Y).reshape(len(z), nc, 9)
-    sdd, nv = sd.reshape(len(z), nc, 9), np.sqrt(V).reshape(len(z), nc, 9)
+    nc, ng = setup.spec.n_cells, setup.spec.n_gauss
+
+    def cells(a):
+        return a[:, :ng].reshape(len(a), nc, 9)
+
+    zz, err, sdd, nv = cells(z), cells(m - Y), cells(sd), cells(np.sqrt(V))
     for k, n in enumerate(STAT_NAMES):
         print(f"{n:10s} RMS z {np.sqrt(np.mean(zz[..., k]**2)):5.2f}  RMS error {np.sqrt(np.mean(err[..., k]**2)):8.3f}  "
               f"median emulator sd {np.median(sdd[..., k]):8.3f}  median simulation sd {np.median(nv[..., k]):8.3f}")
+    if setup.spec.n_vbins:  # log(f + floor) of the v_r histogram bins, by bin
+        nb = setup.spec.n_vbins
+        zh = z[:, ng:].reshape(len(z), nc, nb)
+        eh, sh, vh = [a[:, ng:].reshape(len(z), nc, nb) for a in (m - Y, sd, np.sqrt(V))]
+        print(f"v_r histogram ({nb} bins x {nc} cells): RMS z {np.sqrt(np.mean(zh**2)):.2f}, "
+              f"RMS error {np.sqrt(np.mean(eh**2)):.3f}, median emulator sd {np.median(sh):.3f}, "
+              f"median simulation sd {np.median(vh):.3f}")
+        print("  RMS z by bin: " + " ".join(f"{np.sqrt(np.mean(zh[..., b]**2)):.2f}" for b in range(nb)))
     # near the faces of the domain the GP has design points on one side only
     b = np.asarray(emu.bounds, dtype=float)
     u = (np.asarray(X, dtype=float) - b[:, 0]) / (b[:, 1] - b[:, 0])

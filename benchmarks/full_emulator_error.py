@@ -21,6 +21,15 @@ from swerve.summaries import stats_to_gaussian
 
 
 class FullErrorLikelihood(L.Likelihood):
+    """For emulators of the Gaussian-only cell model (no ``vr_edges``), such as the one of
+    the third session's experiment; refuses others."""
+
+    def __init__(self, emulator, stars, spec, **kw):
+        if spec.n_vbins:
+            raise SystemExit("full_emulator_error.py: written for emulators without a v_r histogram "
+                             "(the experiment behind RESULTS 'Calibration', third session)")
+        super().__init__(emulator, stars, spec, **kw)
+
     def _full_factor(self, theta):
         def factor(th):
             _, cov = self.emulator.predict(th, return_cov=True)

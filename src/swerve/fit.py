@@ -81,8 +81,9 @@ FIT_SCHEMA = Schema("fit", (
     Section("emulator", (
         Key("include_variance", "bool", True, doc="propagate the emulator's predictive uncertainty (false: take it as exact)"),
         Key("error", "str", "catalog", choices=("catalog", "per-star"),
-            doc="marginalise the emulator's error of the cell means once for the catalog (shared by its stars) "
-                "or fold it into each star's density (too optimistic for large catalogs)"),
+            doc="marginalise the emulator's error of the cell means (and v_r histograms, where the emulator has "
+                "them) once for the catalog (shared by its stars) or fold the means' into each star's density "
+                "(too optimistic for large catalogs)"),
         Key("velocity_floor", "float", 1.0, min=0.0,
             doc="km/s added in quadrature to every emulated cell dispersion: the model's resolution "
                 "(the emulated cells are nearly degenerate; see swerve.likelihood.Likelihood)"),
@@ -490,7 +491,17 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
     n_draw = min(200, len(res.samples), int(np.count_nonzero(res.weights)) if res.weights is not None else len(res.samples))
     draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=n_draw, replace=False, p=res.weights)]
     mu, sig = like.cell_gaussians(post.full(draws))
-    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png")
+    ylabel = None
+    if spec.tan_scale:  # the cell Gaussians describe the scaled deflections: compare like with like
+        from .summaries import tangential_scale
+
+        sc = tangential_scale(spec, terms.mean[..., 0])
+        st = st.copy(copy_data=True)
+        st["v_tf_obs"] = np.sum(w * terms.mean[..., 1] / sc, axis=1)
+        st["v_tf_err"] = np.sqrt(np.sum(w * terms.cov[..., 1, 1] / sc**2, axis=1))
+        ylabel = (r"scaled deflection $v_\theta\,\mathrm{sign}(z)\,\sqrt{v_r^2 + %g^2}\,/\,%g$ [km/s]"
+                  % (spec.tan_soft, spec.tan_scale))
+    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png", ylabel=ylabel)
 
 
 def _truth_from_meta(meta, names):

@@ -24,6 +24,23 @@ so that
 
     log L_i(θ) = log Σ_k w_ik N(m_ik; μ_c(ik)(θ), Σ_c(ik)(θ) + C_ik),   Σ_k w_ik = 1,
 
+**With a v_r histogram** (emulators trained with ``[summaries] vr_edges``, e.g.
+``training/histogram.toml``) the radial velocity is not modelled as Gaussian: v_r in a cell inherits the
+launch-speed distribution (skewness up to 1.8, excess kurtosis from -1.1 to +3, nothing below
+0), and a Gaussian quasi-likelihood misstates how much a catalog's v_r tell about the disk mass
+and the launch slope. The cell's density is then the emulated histogram of v_r times the cell
+Gaussian's tangential components conditional on v_r,
+``p(u) = h_c(u_r) N(u_⊥; μ_⊥ + b (u_r - μ_r), S)``, and each sample's term is
+
+    w_ik  p̃_c(m_r)  N(r_ik; (b - κ) δ, M_ik),    r_ik = m_⊥ - μ_⊥ - b (m_r - μ_r),
+
+with ``p̃_c`` the histogram convolved exactly with the sample's v_r error (θ-independent bin
+masses, precomputed), ``M = S + Var(e_⊥ - b e_r)`` the residual's covariance and, within a few
+errors of a bin edge, the first two moments of the true v_r given the step in the histogram
+(``δ``, and the variance added to ``M``; :func:`_term_cond`). This is exact when the histogram
+is flat over the v_r error (a few km/s against 200 km/s bins) and agrees with quadrature of the
+exact convolution to a few 1e-3 in log L near the edges (``tests/test_vr_histogram.py``).
+
 where the sum runs over the samples inside the emulator's cells (the model is conditional on
 the star lying inside the selection volume). The emulator's own uncertainty in the cell means
 is one error shared by all stars, so it is marginalised at the level of the catalog, not star by
@@ -48,7 +65,7 @@ from llvmlite import ir
 from numba import types
 from numba.extending import intrinsic
 
-from .summaries import SummarySpec, stats_to_gaussian
+from .summaries import N_STAT, SummarySpec, stats_to_gaussian, stats_to_vr_density
 
 _LOG_2PI = math.log(2.0 * math.pi)
 
@@ -344,6 +361,9 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
                       f"(r in [{r_lo:g}, {spec.r_edges[-1]:g}] kpc; median r = {r_med:.1f} kpc)")
         elif vr_mean[i] <= 0:
             reason = f"it moves inward (v_r = {vr_mean[i]:.0f} km/s); the emulator models outgoing stars"
+        elif spec.vr_edges and vr_mean[i] >= spec.vr_edges[-1]:
+            reason = (f"its v_r = {vr_mean[i]:.0f} km/s lies beyond the emulator's v_r histogram "
+                      f"(0-{spec.vr_edges[-1]:g} km/s)")
         if reason:
             keep[i] = False
             excluded.append({"id": str(catalog.ids[i]), "row": int(catalog.rows[i]), "reason": reason})
@@ -372,6 +392,16 @@ class _Packed:
     n_star: int
     cols: tuple  # m0, m1, m2, c00, c10, c11, c20, c21, c22, w
     chunk: np.ndarray  # segment indices starting each group of whole stars (parallel tasks)
+    vstart: np.ndarray  # first v_r histogram bin each sample's window covers (n_samples,)
+    vcount: np.ndarray  # bins of the window the sample needs (n_samples,)
+    vbeta: np.ndarray  # (n_samples, K): the sample's v_r error mass in each bin of its window
+    vgamma: np.ndarray  # (n_samples, K): the first moment of that error in each bin (see _vr_window)
+    vgamma2: np.ndarray  # (n_samples, K): its second moment in each bin
+    kap1: np.ndarray  # (n_samples,): regression of the sample's v_tf error on its v_r error
+    kap2: np.ndarray  # (n_samples,): the same for v_pf
+    tsc: np.ndarray  # (n_samples,): scale s(m_r) of the cell Gaussian's tangential components (or 1)
+    tir: np.ndarray  # (n_samples,): -s'(m_r) / s(m_r) where they are scaled, else 0
+    cond: float  # 1: v_r from the histogram, tangential components conditional on it; 0: joint Gaussian
 
 
 #: groups of whole stars the kernels split a catalog into, as parallel tasks (with the walker
@@ -379,7 +409,48 @@ class _Packed:
 _N_CHUNKS = 16
 
 
-def _pack(stars: StarTerms) -> _Packed:
+def _vr_window(m_r, var_r, vr_edges, tol: float = 1e-10):
+    """Each sample's v_r histogram window: first bin (n,), ``β`` (n, K) and ``γ`` (n, K).
+
+    ``β_q`` is the mass of the sample's Gaussian v_r error (mean ``m_r``, variance ``var_r``) in
+    bin ``start + q``, so that the histogram density convolved with the error is exactly
+    ``p̃ = Σ_q β_q dens_(start+q)`` (``dens`` per km/s,
+    :func:`swerve.summaries.stats_to_vr_density`). ``γ_q = ∫_bin (u - m_r) N(u; m_r, var_r) du``,
+    so that ``δ = Σ_q γ_q dens_q / p̃`` is the shift of the true v_r from the measured one given
+    the histogram (nonzero within a few errors of a bin edge, where the density steps);
+    ``γ2_q = ∫_bin (u - m_r)² N(u; m_r, var_r) du`` likewise gives that shift's variance,
+    ``Σ_q γ2_q dens_q / p̃ - δ²`` (``var_r`` away from the edges). Bins holding less than ``tol``
+    of the mass are left out; K is the widest window any sample needs, ``count`` (n,) the bins of
+    its window each sample needs (the kernels loop over those only: one sample with a wide v_r
+    error must not make every sample pay for K bins). Returns (start, count, β, γ, γ2)."""
+    from scipy.special import ndtr
+
+    e = np.asarray(vr_edges, dtype=float)
+    sd = np.sqrt(np.maximum(var_r, 0.0))[:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (e[None, :] - m_r[:, None]) / np.where(sd > 0, sd, 1.0)
+    cdf = np.where(sd > 0, ndtr(z), (e[None, :] > m_r[:, None]).astype(float))
+    mass = np.diff(cdf, axis=1)  # (n, nb)
+    hit = mass > tol
+    nb = mass.shape[1]
+    first = np.where(hit.any(axis=1), np.argmax(hit, axis=1), 0)
+    last = np.where(hit.any(axis=1), nb - 1 - np.argmax(hit[:, ::-1], axis=1), 0)
+    K = int(np.max(last - first + 1)) if len(first) else 1
+    start = np.minimum(first, nb - K)
+    count = (np.maximum(last, first) - start + 1).astype(np.int64)  # bins of the window each sample needs
+    idx = start[:, None] + np.arange(K)[None, :]
+    beta = np.take_along_axis(mass, idx, axis=1)
+    with np.errstate(invalid="ignore"):
+        phi = np.where(sd > 0, np.exp(-0.5 * z * z) / np.sqrt(2 * np.pi) * sd, 0.0)  # σ² N(e; m, σ²)
+    gamma = np.take_along_axis(phi[:, :-1] - phi[:, 1:], idx, axis=1)
+    with np.errstate(invalid="ignore"):
+        xphi = np.where(np.isfinite(z), z * phi * sd, 0.0)  # σ² x N(x; 0, σ²) at x = e - m
+    gamma2 = np.take_along_axis(sd * sd * mass - (xphi[:, 1:] - xphi[:, :-1]), idx, axis=1)
+    return (start.astype(np.int64), count, np.ascontiguousarray(beta), np.ascontiguousarray(gamma),
+            np.ascontiguousarray(gamma2))
+
+
+def _pack(stars: StarTerms, vr_edges=(), tan_scale: float = 0.0, tan_soft: float = 300.0) -> _Packed:
     n, k = stars.cell.shape
     inside = (stars.cell >= 0) & np.isfinite(stars.log_w)
     star_idx = np.repeat(np.arange(n), k).reshape(n, k)[inside]
@@ -402,7 +473,22 @@ def _pack(stars: StarTerms) -> _Packed:
     cut = np.searchsorted(starts[first], np.arange(1, n_chunks) * (len(key) / n_chunks))
     inner = first[np.clip(cut, 0, len(first) - 1)] if len(first) else np.zeros(0, np.int64)
     chunk = np.unique(np.concatenate([[0], inner, [len(seg_star)]])).astype(np.int64)
-    return _Packed(cell[starts[:-1]].astype(np.int64), starts, seg_star, n, cols, chunk)
+    if len(vr_edges):
+        vstart, vcount, vbeta, vgamma, vgamma2 = _vr_window(mean[:, 0], cov[:, 0, 0], vr_edges)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            kap = np.where(cov[:, :1, 0] > 0, cov[:, 1:, 0] / cov[:, :1, 0], 0.0)
+        cond = 1.0
+    else:  # one dummy bin of density 1: the joint Gaussian alone
+        vstart, vcount, vbeta, cond = np.zeros(len(w), np.int64), np.ones(len(w), np.int64), np.ones((len(w), 1)), 0.0
+        vgamma, vgamma2 = np.zeros((len(w), 1)), np.zeros((len(w), 1))
+        kap = np.zeros((len(w), 2))
+    if tan_scale:  # s = tan_scale / sqrt(m_r² + tan_soft²) and -(d s / d m_r) / s
+        h = mean[:, 0] ** 2 + tan_soft**2
+        tsc, tir = np.ascontiguousarray(tan_scale / np.sqrt(h)), np.ascontiguousarray(mean[:, 0] / h)
+    else:
+        tsc, tir = np.ones(len(w)), np.zeros(len(w))
+    return _Packed(cell[starts[:-1]].astype(np.int64), starts, seg_star, n, cols, chunk, vstart, vcount, vbeta,
+                   vgamma, vgamma2, np.ascontiguousarray(kap[:, 0]), np.ascontiguousarray(kap[:, 1]), tsc, tir, cond)
 
 
 @intrinsic
@@ -453,7 +539,8 @@ def fast_exp(x):
 def _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, x00, x10, x11, x20, x21, x22, y0, y1, y2, wj):
     """One sample's weighted Gaussian ``w N(y; u, A + X)`` (without the (2π)^-3/2) and the
     pieces of its gradient: returns ``(p, p/det * b, p/det * adj(S))`` flattened, with
-    ``b = adj(S)(y - u)``. Adjugate inverse, no Cholesky, no log."""
+    ``b = adj(S)(y - u)``, i.e. ``(p, p S⁻¹(y - u), p S⁻¹)``. Adjugate inverse, no Cholesky,
+    no log."""
     s00 = a00 + x00
     s10 = a10 + x10
     s11 = a11 + x11
@@ -480,9 +567,69 @@ def _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, x00, x10, x11, x20, x21, x22
     return p, pi * b0, pi * b1, pi * b2, pi * i00, pi * i10, pi * i11, pi * i20, pi * i21, pi * i22
 
 
+@nb.njit(fastmath=True, inline="always", cache=True)
+def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, y0, y1, y2, wj, dl, dv, k1, k2,
+               sc, ir):
+    """One sample's tangential density conditional on its v_r (without the (2π)^-1), for the
+    histogram model; ``wj`` carries the sample's weight times its radial density.
+
+    The cell's tangential components are ``u_⊥ = μ_⊥ + b (u_r - μ_r) + ε``, ``ε ~ N(0, S)``
+    (``b``, ``S`` = s11, s21, s22: the regression on v_r and the conditional covariance of the
+    cell Gaussian), and the sample's measurement ``m = u + e``, ``e ~ N(0, X)``. The residual
+    ``r = m_⊥ - μ_⊥ - b (m_r - μ_r) = ε + e_⊥ - b e_r`` has covariance
+    ``M = S + X_⊥⊥ - b X_r⊥ - X_⊥r bᵀ + b bᵀ X_rr`` and, given m_r, mean ``(b - κ) δ``
+    (``κ`` = k1, k2: the regression of e_⊥ on e_r; ``δ`` = dl: the expected true v_r minus the
+    measured one given the histogram), and near a bin edge ``(b - κ)(b - κ)ᵀ dv`` more
+    covariance (``dv``: the variance of that difference given the histogram, less ``X_rr``).
+    Exact for a histogram flat over the v_r error; near an edge the two moments are matched (the
+    residual is then a mixture, not a Gaussian).
+
+    With scaled tangential components (see :class:`swerve.summaries.SummarySpec`) the cell
+    Gaussian describes ``τ = u_⊥ / s(u_r)``, ``s = tan_scale / sqrt(u_r² + tan_soft²)``; with
+    ``sc = s(m_r)`` and ``ir = -s'(m_r) / s(m_r) = m_r / (m_r² + tan_soft²)``:
+    ``r = m_⊥ - s τ̄``, ``τ̄ = μ_⊥ + b (m_r - μ_r)``, ``S`` becomes ``s² S`` and ``b`` in the
+    error terms becomes ``B = ∂u_⊥/∂u_r = s (b - τ̄ ir)`` (linearised in the v_r error, a few
+    km/s against ``sqrt(m_r² + tan_soft²)`` ≥ 300 km/s). ``sc = 1, ir = 0``: the unscaled model
+    above.
+
+    Returns ``(p, p Jᵀ M⁻¹ r, p Jᵀ M⁻¹ J)`` flattened like :func:`_term`, with
+    ``J = ∂r/∂μ = s [b, -I]`` up to sign (the small dependence of ``B`` on μ left out)."""
+    d0 = y0 - u0
+    t1 = u1 + b1 * d0
+    t2 = u2 + b2 * d0
+    c1 = sc * (b1 - t1 * ir)
+    c2 = sc * (b2 - t2 * ir)
+    s2 = sc * sc
+    m11 = s2 * s11 + x11 - 2.0 * c1 * x10 + c1 * c1 * x00
+    m21 = s2 * s21 + x21 - c1 * x20 - c2 * x10 + c1 * c2 * x00
+    m22 = s2 * s22 + x22 - 2.0 * c2 * x20 + c2 * c2 * x00
+    e1 = c1 - k1
+    e2 = c2 - k2
+    m11 += e1 * e1 * dv
+    m21 += e1 * e2 * dv
+    m22 += e2 * e2 * dv
+    r1 = y1 - sc * t1 - e1 * dl
+    r2 = y2 - sc * t2 - e2 * dl
+    det = m11 * m22 - m21 * m21
+    inv = 1.0 / det
+    i11 = m22 * inv
+    i21 = -m21 * inv
+    i22 = m11 * inv
+    z1 = i11 * r1 + i21 * r2
+    z2 = i21 * r1 + i22 * r2
+    q = r1 * z1 + r2 * z2
+    p = wj * fast_exp(-0.5 * q) * math.sqrt(inv)
+    ps = p * sc
+    pss = ps * sc
+    return (p, -ps * (b1 * z1 + b2 * z2), ps * z1, ps * z2,
+            pss * (b1 * b1 * i11 + 2.0 * b1 * b2 * i21 + b2 * b2 * i22), -pss * (b1 * i11 + b2 * i21), pss * i11,
+            -pss * (b1 * i21 + b2 * i22), pss * i21, pss * i22)
+
+
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
-                    mu, sig, out, want_grad, grad, fisher):
+                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mu, sig, dens,
+                    out, want_grad, grad, fisher):
     """out[w, i] = log sum_k w_ik N(m_ik; mu[w, c], sig[w, c] + C_ik), summed over each star's
     (star, cell) segments; sig holds the 6 lower-triangle entries (00, 10, 11, 20, 21, 22).
     One walker at a time, vectorised over a segment's samples, parallel over (walker, chunk of
@@ -497,7 +644,14 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
 
     Gaussians are evaluated in linear space with the adjugate inverse (no log or Cholesky per
     sample); a star whose sum underflows is redone in log space by :func:`_star_logspace` (and
-    left out of ``grad`` and ``fisher``)."""
+    left out of ``grad`` and ``fisher``).
+
+    With ``cond = 1`` each sample's term is its radial density from the walker's v_r
+    histogram, ``p̃ = Σ_q vbeta[j, q] dens[w, c, vstart[j] + q]`` (the histogram convolved with
+    the sample's v_r error), times the Gaussian of its tangential components conditional on v_r
+    (:func:`_term_cond`; ``δ`` from ``vgamma``, :func:`_vr_window`; ``kap1``, ``kap2`` the
+    regressions of the sample's tangential errors on its v_r error); ``lognorm`` is the
+    Gaussian constant (1.5 or 1 log 2π)."""
     W = mu.shape[0]
     nseg = seg_cell.shape[0]
     nch = chunk.shape[0] - 1
@@ -517,10 +671,29 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
             u0 = mu[wi, c, 0]
             u1 = mu[wi, c, 1]
             u2 = mu[wi, c, 2]
+            b1 = a10 / a00
+            b2 = a20 / a00
+            s11 = a11 - b1 * a10
+            s21 = a21 - b1 * a20
+            s22 = a22 - b2 * a20
             tot = g0 = g1 = g2 = h00 = h10 = h11 = h20 = h21 = h22 = 0.0
             for j in range(seg_start[s], seg_start[s + 1]):
-                t = _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, c00[j], c10[j], c11[j], c20[j], c21[j],
-                          c22[j], m0[j], m1[j], m2[j], w[j])
+                if cond:
+                    pr = 0.0
+                    pg = 0.0
+                    ph = 0.0
+                    for q in range(vcount[j]):
+                        dq = dens[wi, c, vstart[j] + q]
+                        pr += vbeta[j, q] * dq
+                        pg += vgamma[j, q] * dq
+                        ph += vgamma2[j, q] * dq
+                    dl = pg / pr if pr > 0.0 else 0.0
+                    dv = ph / pr - dl * dl - c00[j] if pr > 0.0 else 0.0
+                    t = _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, c00[j], c10[j], c11[j], c20[j], c21[j],
+                                   c22[j], m0[j], m1[j], m2[j], w[j] * pr, dl, dv, kap1[j], kap2[j], tsc[j], tir[j])
+                else:
+                    t = _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, c00[j], c10[j], c11[j], c20[j], c21[j],
+                              c22[j], m0[j], m1[j], m2[j], w[j])
                 tot += t[0]
                 g0 += t[1]
                 g1 += t[2]
@@ -543,16 +716,16 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 gs[wi, s, 7] = h21
                 gs[wi, s, 8] = h22
     for wi in nb.prange(W):
-        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, out, grad, fisher)
+        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, lognorm, out, grad, fisher)
 
 
 @nb.njit(fastmath=True, cache=True)
-def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, out, grad, fisher):
+def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, lognorm, out, grad, fisher):
     """One walker's per-star logs and its responsibility-weighted gradient and Fisher sums,
     from the per-star sums ``acc`` (n_star,) and per-segment sums ``gs`` (n_seg, 9)."""
     for i in range(acc.shape[0]):
         if acc[i] > 1e-300:
-            out[wi, i] = math.log(acc[i]) - 1.5 * _LOG_2PI
+            out[wi, i] = math.log(acc[i]) - lognorm
         else:
             out[wi, i] = np.nan  # recomputed in log space
     if want_grad:
@@ -575,13 +748,14 @@ _PAD_FROM = 5
 
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
-                    mub, sigb, out, want_grad, grad, fisher):
+                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mub, sigb, densb,
+                    out, want_grad, grad, fisher):
     """:func:`_loglike_kernel` for blocks of :data:`_WALKER_BLOCK` walkers, vectorised over the
     walkers of a block (every sample meets 16 walkers in the vector registers; a segment holds
     only ~40 samples, too few to fill them), parallel over (block, chunk of stars) pairs.
     ``mub`` (n_blocks, n_cells, 3, B) and ``sigb`` (n_blocks, n_cells, 6, B) hold the walkers
-    last; ``out``, ``grad`` and ``fisher`` are laid out as in :func:`_loglike_kernel` for the
-    n_blocks × B walkers."""
+    last, as does ``densb`` (n_blocks, n_cells, n_bins, B); ``out``, ``grad`` and ``fisher``
+    are laid out as in :func:`_loglike_kernel` for the n_blocks × B walkers."""
     B = _WALKER_BLOCK
     nseg = seg_cell.shape[0]
     nbk = mub.shape[0]
@@ -593,10 +767,24 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
         ch = task % nch
         tot = np.zeros(B)
         G = np.zeros((9, B))
+        pr = np.zeros(B)
+        pg = np.zeros(B)
+        ph = np.zeros(B)
+        b1 = np.zeros(B)
+        b2 = np.zeros(B)
+        s11 = np.zeros(B)
+        s21 = np.zeros(B)
+        s22 = np.zeros(B)
         for s in range(chunk[ch], chunk[ch + 1]):
             c = seg_cell[s]
             tot[:] = 0.0
             G[:, :] = 0.0
+            for k in range(B):
+                b1[k] = sigb[bi, c, 1, k] / sigb[bi, c, 0, k]
+                b2[k] = sigb[bi, c, 3, k] / sigb[bi, c, 0, k]
+                s11[k] = sigb[bi, c, 2, k] - b1[k] * sigb[bi, c, 1, k]
+                s21[k] = sigb[bi, c, 4, k] - b1[k] * sigb[bi, c, 3, k]
+                s22[k] = sigb[bi, c, 5, k] - b2[k] * sigb[bi, c, 3, k]
             for j in range(seg_start[s], seg_start[s + 1]):
                 x00 = c00[j]
                 x10 = c10[j]
@@ -608,13 +796,56 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 y1 = m1[j]
                 y2 = m2[j]
                 wj = w[j]
-                for k in range(B):
-                    t = _term(sigb[bi, c, 0, k], sigb[bi, c, 1, k], sigb[bi, c, 2, k], sigb[bi, c, 3, k],
-                              sigb[bi, c, 4, k], sigb[bi, c, 5, k], mub[bi, c, 0, k], mub[bi, c, 1, k],
-                              mub[bi, c, 2, k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj)
-                    tot[k] += t[0]
-                    for m in range(9):
-                        G[m, k] += t[1 + m]
+                if cond:
+                    v0 = vstart[j]
+                    k1 = kap1[j]
+                    k2 = kap2[j]
+                    scj = tsc[j]
+                    irj = tir[j]
+                    if vcount[j] == 1:  # inside one bin: δ and the variance do not depend on the walker
+                        bq = vbeta[j, 0]
+                        d1 = vgamma[j, 0] / bq if bq > 0.0 else 0.0
+                        v1 = vgamma2[j, 0] / bq - d1 * d1 - x00 if bq > 0.0 else 0.0
+                        for k in range(B):
+                            pr[k] = bq * densb[bi, c, v0, k]
+                            pg[k] = d1
+                            ph[k] = v1
+                    else:
+                        pr[:] = 0.0
+                        pg[:] = 0.0
+                        ph[:] = 0.0
+                        for q in range(vcount[j]):
+                            bq = vbeta[j, q]
+                            gq = vgamma[j, q]
+                            hq = vgamma2[j, q]
+                            for k in range(B):
+                                dq = densb[bi, c, v0 + q, k]
+                                pr[k] += bq * dq
+                                pg[k] += gq * dq
+                                ph[k] += hq * dq
+                        for k in range(B):  # now δ and the variance change
+                            ok = pr[k] > 0.0
+                            ipr = 1.0 / pr[k] if ok else 0.0
+                            dk = pg[k] * ipr
+                            ph[k] = ph[k] * ipr - dk * dk - x00 if ok else 0.0
+                            pg[k] = dk
+                    for k in range(B):
+                        dl = pg[k]
+                        dv = ph[k]
+                        t = _term_cond(mub[bi, c, 0, k], mub[bi, c, 1, k], mub[bi, c, 2, k], b1[k], b2[k], s11[k],
+                                       s21[k], s22[k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj * pr[k], dl, dv,
+                                       k1, k2, scj, irj)
+                        tot[k] += t[0]
+                        for m in range(9):
+                            G[m, k] += t[1 + m]
+                else:
+                    for k in range(B):
+                        t = _term(sigb[bi, c, 0, k], sigb[bi, c, 1, k], sigb[bi, c, 2, k], sigb[bi, c, 3, k],
+                                  sigb[bi, c, 4, k], sigb[bi, c, 5, k], mub[bi, c, 0, k], mub[bi, c, 1, k],
+                                  mub[bi, c, 2, k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj)
+                        tot[k] += t[0]
+                        for m in range(9):
+                            G[m, k] += t[1 + m]
             i = seg_star[s]
             for k in range(B):
                 acc[bi, i, k] += tot[k]  # a star's segments all lie in one chunk: no race
@@ -623,22 +854,30 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
     for wi in nb.prange(nbk * B):
         bi = wi // B
         k = wi % B
-        _finish(wi, acc[bi, :, k], gs[bi, :, :, k], seg_cell, seg_star, want_grad, out, grad, fisher)
+        _finish(wi, acc[bi, :, k], gs[bi, :, :, k], seg_cell, seg_star, want_grad, lognorm, out, grad, fisher)
 
 
-def _run_kernels(p: "_Packed", mu, tri, want_grad: bool):
+def _run_kernels(p: "_Packed", mu, tri, want_grad: bool, dens=None):
     """Per-star log-likelihoods (W, n_star), gradient (W, n_cells, 3) and Fisher information
     (W, n_cells, 6) for the walkers' cell Gaussians ``mu`` (W, n_cells, 3) and ``tri``
-    (W, n_cells, 6): whole blocks of walkers by :func:`_loglike_blocks`, the rest by
+    (W, n_cells, 6) and v_r histogram densities ``dens`` (W, n_cells, n_bins; needed when
+    ``p.cond``, else ignored): whole blocks of walkers by :func:`_loglike_blocks`, the rest by
     :func:`_loglike_kernel`; underflowed stars redone in log space. A last partial block of
     at least :data:`_PAD_FROM` walkers is padded to a whole one (a walker costs 3-4× less in a
     block, and emcee passes half an ensemble less the walkers proposed outside the prior)."""
     W, nc = mu.shape[0], mu.shape[1]
+    if not p.cond:
+        dens = np.ones((W, nc, 1))
+    elif dens is None or dens.shape[:2] != (W, nc):
+        raise ValueError("likelihood: this catalog's terms need the v_r histogram densities of every walker")
     if W % _WALKER_BLOCK >= _PAD_FROM:
         pad = _WALKER_BLOCK - W % _WALKER_BLOCK
         mu = np.concatenate([mu, np.repeat(mu[-1:], pad, axis=0)])
         tri = np.concatenate([tri, np.repeat(tri[-1:], pad, axis=0)])
-        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad))
+        dens = np.concatenate([dens, np.repeat(dens[-1:], pad, axis=0)])
+        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens))
+    lognorm = (1.5 - 0.5 * p.cond) * _LOG_2PI
+    vr = (p.vstart, p.vcount, p.vbeta, p.vgamma, p.vgamma2, p.kap1, p.kap2, p.tsc, p.tir, float(p.cond), lognorm)
     out = np.empty((W, p.n_star))
     grad = np.zeros((W, nc, 3))
     fisher = np.zeros((W, nc, 6))
@@ -647,19 +886,22 @@ def _run_kernels(p: "_Packed", mu, tri, want_grad: bool):
     if n:
         mub = np.ascontiguousarray(mu[:n].reshape(n // B, B, nc, 3).transpose(0, 2, 3, 1))
         sigb = np.ascontiguousarray(tri[:n].reshape(n // B, B, nc, 6).transpose(0, 2, 3, 1))
-        _loglike_blocks(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, mub, sigb, out[:n], want_grad,
-                        grad[:n], fisher[:n])
+        densb = np.ascontiguousarray(dens[:n].reshape(n // B, B, nc, -1).transpose(0, 2, 3, 1))
+        _loglike_blocks(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mub, sigb, densb,
+                        out[:n], want_grad, grad[:n], fisher[:n])
     if n < W:
-        _loglike_kernel(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, mu[n:], tri[n:], out[n:],
-                        want_grad, grad[n:], fisher[n:])
+        _loglike_kernel(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mu[n:], tri[n:],
+                        np.ascontiguousarray(dens[n:]), out[n:], want_grad, grad[n:], fisher[n:])
     for wi, i in np.argwhere(np.isnan(out)):  # underflow: a star far in the tail of this walker's model
-        out[wi, i] = _star_logspace(p.seg_cell, p.seg_start, p.seg_star, i, *p.cols, mu[wi], tri[wi])
+        out[wi, i] = _star_logspace(p.seg_cell, p.seg_start, p.seg_star, i, *p.cols, *vr, mu[wi], tri[wi],
+                                    np.ascontiguousarray(dens[wi]))
     return out, grad, fisher
 
 
 
 @nb.njit(cache=True)
-def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, c20, c21, c22, w, mu, sig):
+def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
+                   vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mu, sig, dens):
     """log-likelihood of star i for one walker, in log space (for sums that underflow)."""
     best = -np.inf
     vals = []
@@ -676,6 +918,38 @@ def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, 
             S[2, 1] = S[1, 2] = sig[c, 4] + c21[j]
             S[2, 2] = sig[c, 5] + c22[j]
             d = np.array([m0[j] - mu[c, 0], m1[j] - mu[c, 1], m2[j] - mu[c, 2]])
+            if cond:  # the histogram model (see _term_cond), in log space
+                pr = 0.0
+                pg = 0.0
+                ph = 0.0
+                for q in range(vcount[j]):
+                    pr += vbeta[j, q] * dens[c, vstart[j] + q]
+                    pg += vgamma[j, q] * dens[c, vstart[j] + q]
+                    ph += vgamma2[j, q] * dens[c, vstart[j] + q]
+                if pr <= 0.0:
+                    continue
+                dl = pg / pr
+                dv = ph / pr - dl * dl - c00[j]
+                b1 = sig[c, 1] / sig[c, 0]
+                b2 = sig[c, 3] / sig[c, 0]
+                sc, ir = tsc[j], tir[j]
+                t1 = mu[c, 1] + b1 * d[0]
+                t2 = mu[c, 2] + b2 * d[0]
+                g1 = sc * (b1 - t1 * ir)
+                g2 = sc * (b2 - t2 * ir)
+                e1 = g1 - kap1[j]
+                e2 = g2 - kap2[j]
+                M = np.empty((2, 2))
+                M[0, 0] = sc * sc * (sig[c, 2] - b1 * sig[c, 1]) + c11[j] - 2 * g1 * c10[j] + g1 * g1 * c00[j] + e1 * e1 * dv
+                M[1, 0] = M[0, 1] = (sc * sc * (sig[c, 4] - b1 * sig[c, 3]) + c21[j] - g1 * c20[j] - g2 * c10[j]
+                                     + g1 * g2 * c00[j] + e1 * e2 * dv)
+                M[1, 1] = sc * sc * (sig[c, 5] - b2 * sig[c, 3]) + c22[j] - 2 * g2 * c20[j] + g2 * g2 * c00[j] + e2 * e2 * dv
+                r = np.array([m1[j] - sc * t1 - e1 * dl, m2[j] - sc * t2 - e2 * dl])
+                L2 = np.linalg.cholesky(M)
+                y2 = np.linalg.solve(L2, r)
+                vals.append(math.log(w[j] * pr) - 0.5 * np.sum(y2 * y2) - math.log(L2[0, 0] * L2[1, 1]))
+                best = max(best, vals[-1])
+                continue
             L = np.linalg.cholesky(S)
             y = np.linalg.solve(L, d)
             v = math.log(w[j]) - 0.5 * np.sum(y * y) - math.log(L[0, 0] * L[1, 1] * L[2, 2])
@@ -686,7 +960,7 @@ def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, 
     acc = 0.0
     for v in vals:
         acc += math.exp(v - best)
-    return best + math.log(acc) - 1.5 * _LOG_2PI
+    return best + math.log(acc) - lognorm
 
 
 # ------------------------------------------------------------------------------ likelihood ----
@@ -718,8 +992,9 @@ class Likelihood:
         compiled kernel) and the emulator's predictive covariance ``E`` of those means, the
         Gaussian integral gives ``log L = log L(μ̂) + ½ gᵀ (P + E⁻¹)⁻¹ g − ½ log det(I + E P)``
         (exact when the stars' densities are Gaussian in the cell mean,
-        ``tests/test_likelihood.py``). The emulator's error in the cell *covariances* is not
-        propagated.
+        ``tests/test_likelihood.py``). With a v_r histogram (``spec.vr_edges``) its emulated
+        log-fractions join the means in the same integral (:meth:`_histogram_correction`). The
+        emulator's error in the cell *covariances* is not propagated.
 
         ``"per-star"``: the variance of each cell mean is added to every star's density, as if
         each star saw an independent emulator error; too optimistic for large catalogs (kept
@@ -773,10 +1048,26 @@ class Likelihood:
         b = np.asarray(emulator.bounds, dtype=float)
         self._lo, self._span = b[:, 0], b[:, 1] - b[:, 0]
         self._cache = {}  # what -> (unit-cube point where computed, value): "sd", "mean_cov_factor"
+        self._last_prediction = None  # (theta, emulated summaries) of the last cell model
         self.parameter_names = list(emulator.parameter_names)
-        self._packed = _pack(stars)
+        self._packed = _pack(stars, spec.vr_edges, spec.tan_scale, spec.tan_soft)
         nc = spec.n_cells
-        self._mean_idx = (np.arange(nc)[:, None] * (spec.n_outputs // nc) + np.arange(3)[None, :]).ravel()
+        self._mean_idx = (np.arange(nc)[:, None] * N_STAT + np.arange(3)[None, :]).ravel()
+        if spec.n_vbins:
+            # the stars' expected counts in every (cell, v_r bin): each sample's weight within its
+            # star times its v_r error's mass in the bin (θ-independent; for the histogram's
+            # emulator error, see _histogram_correction)
+            pk = self._packed
+            nb = spec.n_vbins
+            w_s = pk.cols[-1]
+            cell_s = np.repeat(pk.seg_cell, np.diff(pk.seg_start))
+            tot = np.maximum(pk.vbeta.sum(axis=1), 1e-300)
+            counts = np.zeros((nc, nb))
+            for q in range(pk.vbeta.shape[1]):
+                ok = q < pk.vcount
+                np.add.at(counts, (cell_s[ok], pk.vstart[ok] + q), (w_s * pk.vbeta[:, q] / tot)[ok])
+            self._hist_counts = counts
+            self._hist_idx = spec.n_gauss + np.arange(nc * nb)
 
     # ----------------------------------------------------------------- emulator's uncertainty
     def _cached(self, theta, what, compute):
@@ -838,6 +1129,15 @@ class Likelihood:
         """Per-walker cell means (W, n_cells, 3) and covariances (W, n_cells, 3, 3), the latter
         with ``velocity_floor²`` added to the diagonal; with ``fold`` (default:
         ``emulator_error == "per-star"``) the emulator's variance of the cell means too."""
+        return self._cell_model(theta, fold)[:2]
+
+    def vr_densities(self, theta) -> np.ndarray:
+        """Per-walker v_r histogram densities (W, n_cells, n_bins), per km/s (emulators with a
+        v_r histogram only, ``spec.vr_edges``)."""
+        return self._cell_model(theta)[2]
+
+    def _cell_model(self, theta, fold: bool | None = None):
+        """(cell means, cell covariances, v_r densities or None) from one emulator prediction."""
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
         fold = self.emulator_error == "per-star" if fold is None else fold
         sd = None
@@ -849,6 +1149,7 @@ class Likelihood:
                 sd = np.broadcast_to(self._cached(theta, "sd", lambda c: self.emulator.predict(c, return_std=True)[1]),
                                      np.shape(y))
         y = np.asarray(y, dtype=float)
+        self._last_prediction = (theta.copy(), y)
         if y.shape[-1] != self.spec.n_outputs:
             raise ValueError(
                 f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}"
@@ -856,21 +1157,105 @@ class Likelihood:
         mu, sig = stats_to_gaussian(y, self.spec.n_cells)
         add = np.full(mu.shape, self.velocity_floor**2)
         if sd is not None:
-            add = add + (np.asarray(sd, dtype=float).reshape(y.shape[0], self.spec.n_cells, -1)[..., :3]) ** 2
+            add = add + (np.asarray(sd, dtype=float)[..., :self.spec.n_gauss]
+                         .reshape(y.shape[0], self.spec.n_cells, N_STAT)[..., :3]) ** 2
         for a in range(3):
             sig[..., a, a] += add[..., a]
-        return np.ascontiguousarray(mu), np.ascontiguousarray(sig)
+        dens = np.ascontiguousarray(stats_to_vr_density(y, self.spec)) if self.spec.n_vbins else None
+        return np.ascontiguousarray(mu), np.ascontiguousarray(sig), dens
 
     def _evaluate(self, theta, want_grad: bool):
-        mu, sig = self.cell_gaussians(theta)
+        mu, sig, dens = self._cell_model(theta)
         tri = np.ascontiguousarray(np.stack(
             [sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0], sig[..., 2, 1], sig[..., 2, 2]], -1))
-        return _run_kernels(self._packed, mu, tri, want_grad)
+        return _run_kernels(self._packed, mu, tri, want_grad, dens)
 
     def per_star(self, theta) -> np.ndarray:
         """Log-likelihood of every star, (W, n_stars) (without the catalog-level emulator
         correction, which belongs to no single star)."""
         return self._evaluate(np.atleast_2d(np.asarray(theta, dtype=float)), False)[0]
+
+    def _histogram_correction(self, theta, grad, fisher) -> np.ndarray:
+        """The catalog-level marginalisation of the emulator's error in the cell means *and* the
+        v_r histograms (emulators with ``vr_edges``), per walker.
+
+        With the log-likelihood expanded to second order in those outputs around the emulated
+        ones, ``log L = log L(ŷ) + ½ gᵀ (P + E⁻¹)⁻¹ g - ½ log det(I + E P)`` as for the means
+        alone (:meth:`emulator_correction`), with: the means' gradient from the kernel; the
+        histogram's, per cell and bin, ``a_b (n_b - n f_b)`` (``n_b`` the stars' expected counts
+        in the bin, ``f_b`` the emulated fraction, ``a_b = ∂ log f_b / ∂ stat_b``), the score of
+        a multinomial; and ``P`` block-diagonal (means: the kernel's Fisher information;
+        histogram: the multinomial's, ``n diag(a) (diag(f) - f fᵀ) diag(a)``), taken at the
+        walkers' mean and kept with the emulator's covariance ``E`` until that is refreshed (a
+        285-dimensional solve per walker would cost more than the rest of the call), so that
+        only the gradient changes from walker to walker; ``emulator_variance="per-walker"``
+        evaluates both at every walker instead."""
+        from .summaries import VR_FRACTION_FLOOR, VR_FRACTION_MIN
+
+        spec = self.spec
+        nc, nb = spec.n_cells, spec.n_vbins
+
+        def hist_terms(th):
+            last = self._last_prediction
+            y = last[1] if last is not None and last[0].shape == th.shape and np.array_equal(last[0], th) \
+                else np.asarray(self.emulator.predict(th), dtype=float)
+            h = y[:, spec.n_gauss:].reshape(len(th), nc, nb)
+            e = np.exp(h)
+            g = np.maximum(e - VR_FRACTION_FLOOR, VR_FRACTION_MIN)
+            a = np.where(e - VR_FRACTION_FLOOR > VR_FRACTION_MIN, e / g, 0.0)
+            f = g / g.sum(axis=-1, keepdims=True)
+            return a, f
+
+        n_c = self._hist_counts.sum(axis=1)
+
+        def factor(centre):
+            idx = np.concatenate([self._mean_idx, self._hist_idx])
+            _, cov = self.emulator.predict(centre, return_cov=True)
+            E = np.asarray(cov, dtype=float)[0][np.ix_(idx, idx)]
+            E = 0.5 * (E + E.T)
+            E[np.diag_indices_from(E)] += 1e-12 * np.max(np.diag(E)) + 1e-300
+            Lf = np.linalg.cholesky(E)
+            # P at the centre: the means' from the kernel, the histogram's multinomial
+            _, _, _, f0 = self._evaluate_full(centre)
+            n = len(idx)
+            P = np.zeros((n, n))
+            for c in range(nc):
+                blk = np.zeros((3, 3))
+                for k, (i, j) in enumerate(((0, 0), (1, 0), (1, 1), (2, 0), (2, 1), (2, 2))):
+                    blk[i, j] = blk[j, i] = f0[0, c, k]
+                P[3 * c:3 * c + 3, 3 * c:3 * c + 3] = blk
+            a, f = hist_terms(centre)
+            for c in range(nc):
+                o = 3 * nc + c * nb
+                P[o:o + nb, o:o + nb] = n_c[c] * (a[0, c][:, None] * (np.diag(f[0, c]) - np.outer(f[0, c], f[0, c]))
+                                                   * a[0, c][None, :])
+            B = Lf.T @ P @ Lf
+            B[np.diag_indices_from(B)] += 1.0
+            C = np.linalg.cholesky(B)
+            from scipy.linalg import solve_triangular
+
+            # gᵀ (P + E⁻¹)⁻¹ g = |C⁻¹ Lfᵀ g|² = |g Q|² with Q = Lf C⁻ᵀ
+            Q = solve_triangular(C, Lf.T, lower=True).T
+            return Q, 2.0 * np.sum(np.log(np.diag(C)))
+
+        a, f = hist_terms(theta)
+        gh = a * (self._hist_counts[None] - n_c[None, :, None] * f)
+        g = np.concatenate([grad.reshape(len(theta), -1), gh.reshape(len(theta), -1)], axis=1)
+        if self.emulator_variance == "per-walker" and len(theta) > 1:  # exact: E and P at every walker
+            out = np.empty(len(theta))
+            for i in range(len(theta)):
+                Q, logdet = factor(theta[i:i + 1])
+                y = g[i] @ Q
+                out[i] = 0.5 * y @ y - 0.5 * logdet
+            return out
+        Q, logdet = factor(theta) if len(theta) == 1 else self._cached(theta, "hist_cov_factor", factor)
+        y = g @ Q
+        return 0.5 * np.einsum("wi,wi->w", y, y) - 0.5 * logdet
+
+    def _evaluate_full(self, theta):
+        """(per-star logs, None, gradient, Fisher) of the kernel at theta (for the corrections)."""
+        out, grad, fisher = self._evaluate(np.atleast_2d(theta), True)
+        return out, None, grad, fisher
 
     def __call__(self, theta) -> np.ndarray:
         """Total log-likelihood, (W,) for theta of shape (W, d) (or a float for (d,))."""
@@ -878,7 +1263,10 @@ class Likelihood:
         th2 = np.atleast_2d(theta)
         if self.emulator_error == "catalog":
             out, grad, fisher = self._evaluate(th2, True)
-            tot = out.sum(axis=1) + self.emulator_correction(grad, fisher, self._mean_cov_factor(th2))
+            if self.spec.n_vbins:
+                tot = out.sum(axis=1) + self._histogram_correction(th2, grad, fisher)
+            else:
+                tot = out.sum(axis=1) + self.emulator_correction(grad, fisher, self._mean_cov_factor(th2))
         else:
             tot = self._evaluate(th2, False)[0].sum(axis=1)
         return tot if theta.ndim == 2 else float(tot[0])

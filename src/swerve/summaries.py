@@ -26,6 +26,17 @@ components in each cell (a synthetic likelihood in the sense of Wood 2010, Natur
 so that a star's tangential velocity is modelled conditionally on its radial velocity
 through the cell's covariance.
 
+The radial velocities are far from Gaussian in a cell (they inherit the launch-speed
+distribution: skewness 0.1-1.8 and excess kurtosis -1.1 to +3 in the default Galaxy across the
+launch slopes, with a hard floor at v_r = 0), so a Gaussian in v_r misstates what the v_r of a
+catalog can tell. With ``vr_edges`` set, every cell also gets a **histogram of v_r** on those
+fixed edges (km/s), one statistic per bin, ``log(f + VR_FRACTION_FLOOR)`` with ``f`` the
+weighted fraction of the cell's stars in the bin; the likelihood then uses the histogram as
+the density of v_r and the Gaussian only for the tangential components conditional on v_r
+(:mod:`swerve.likelihood`). The histogram outputs follow the ``n_cells × 9`` Gaussian ones, cell
+by cell: ``cellCC_vr_bin_BB``. With ``tan_scale`` also set (an experimental option), the
+Gaussian describes the deflections times about ``v_r / tan_scale`` (see :class:`SummarySpec`).
+
 Simulation noise: every summary gets a variance from a Poisson bootstrap over orbits (each
 orbit of the bank, with all its samples, is one independent unit; samples along one
 trajectory are correlated, so resampling samples would underestimate the noise).
@@ -44,6 +55,14 @@ STAT_NAMES = (
 )
 N_STAT = len(STAT_NAMES)
 
+#: added to every v_r bin fraction before its log (the emulated statistic is ``log(f + floor)``),
+#: so that empty bins have a finite value; the likelihood subtracts it again and keeps every
+#: fraction at least :data:`VR_FRACTION_MIN`
+VR_FRACTION_FLOOR = 1e-3
+#: the smallest v_r bin fraction the likelihood uses (an emulated fraction at or below the
+#: floor means "next to nothing", not "impossible")
+VR_FRACTION_MIN = 1e-5
+
 
 @dataclass(frozen=True)
 class SummarySpec:
@@ -59,12 +78,35 @@ class SummarySpec:
         Smallest effective sample size accepted in a cell.
     n_boot : int
         Poisson-bootstrap replicates for the simulation noise.
+    vr_edges : tuple of float
+        Edges of the per-cell histogram of v_r, km/s, increasing from 0 (empty: no histogram,
+        the v_r density is the cell Gaussian's, as in emulators trained before it existed).
+    tan_scale : float
+        ``v0`` in km/s (needs ``vr_edges``): the cell Gaussians describe
+        ``(v_r, v_tf / s(v_r), v_pf / s(v_r))`` with ``s(v) = v0 / sqrt(v² + v_soft²)``, the
+        deflections times (nearly) the radial speed. A deflection is a kick accumulated over the
+        flight, ∝ 1/v_r at a given place, so the deflections themselves have a conditional mean
+        and spread that change many-fold with v_r inside a cell (measured in the innermost cell
+        of the default domain's spherical Galaxy, ``benchmarks/diagnose_model.py shape``: spread
+        of v_tf 10 km/s at v_r 300-600 km/s, 1 km/s at 2000-3200, against the cell Gaussian's
+        single 28), which no Gaussian describes; the scaled ones
+        are nearly independent of v_r. 0: unscaled (the default). Measured
+        (``benchmarks/RESULTS.md``, "Calibration"): with ``tan_scale = 1000`` the disk mass of
+        800-star mocks came out 0.16-0.25e11 Msun high in four of four, against unbiased without
+        it; an experimental option, not used by the shipped emulator.
+    tan_soft : float
+        ``v_soft`` in km/s: below it the scale stops growing (stars near their turning point,
+        v_r → 0, have finite deflections, and the likelihood linearises ``s`` over each star's
+        v_r error).
     """
 
     r_edges: tuple = (10.0, 20.0, 35.0, 60.0, 100.0, 250.0)
     lat_edges: tuple = (0.0, 30.0, 60.0, 90.0)
     min_ess: float = 30.0
     n_boot: int = 64
+    vr_edges: tuple = ()
+    tan_scale: float = 0.0
+    tan_soft: float = 300.0
 
     def __post_init__(self):
         r = np.asarray(self.r_edges, dtype=float)
@@ -77,6 +119,19 @@ class SummarySpec:
             raise ValueError(f"summaries min_ess: expected a positive number, got {self.min_ess!r}")
         if int(self.n_boot) < 8:
             raise ValueError(f"summaries n_boot: expected at least 8 bootstrap replicates, got {self.n_boot!r}")
+        v = np.asarray(self.vr_edges, dtype=float)
+        if len(v) and (v.ndim != 1 or len(v) < 3 or v[0] != 0 or np.any(np.diff(v) <= 0) or not np.all(np.isfinite(v))):
+            raise ValueError(f"summaries vr_edges: expected at least three increasing speeds from 0 km/s "
+                             f"(or none), got {self.vr_edges!r}")
+        object.__setattr__(self, "vr_edges", tuple(float(x) for x in v))
+        if not (np.isfinite(self.tan_scale) and self.tan_scale >= 0):
+            raise ValueError(f"summaries tan_scale: expected a speed >= 0 km/s, got {self.tan_scale!r}")
+        if self.tan_scale and not len(v):
+            raise ValueError("summaries tan_scale: needs vr_edges (the scaled model takes v_r from the histogram)")
+        object.__setattr__(self, "tan_scale", float(self.tan_scale))
+        if not (np.isfinite(self.tan_soft) and self.tan_soft > 0):
+            raise ValueError(f"summaries tan_soft: expected a speed > 0 km/s, got {self.tan_soft!r}")
+        object.__setattr__(self, "tan_soft", float(self.tan_soft))
         object.__setattr__(self, "r_edges", tuple(float(x) for x in r))
         object.__setattr__(self, "lat_edges", tuple(float(x) for x in b))
         object.__setattr__(self, "n_boot", int(self.n_boot))
@@ -94,11 +149,22 @@ class SummarySpec:
         return self.n_r * self.n_lat
 
     @property
-    def n_outputs(self) -> int:
+    def n_vbins(self) -> int:
+        """Bins of the per-cell v_r histogram (0 without one)."""
+        return max(len(self.vr_edges) - 1, 0)
+
+    @property
+    def n_gauss(self) -> int:
+        """Outputs of the cell Gaussians (the first block of the summary vector)."""
         return self.n_cells * N_STAT
 
+    @property
+    def n_outputs(self) -> int:
+        return self.n_cells * (N_STAT + self.n_vbins)
+
     def output_names(self) -> list[str]:
-        return [f"cell{c:02d}_{s}" for c in range(self.n_cells) for s in STAT_NAMES]
+        return ([f"cell{c:02d}_{s}" for c in range(self.n_cells) for s in STAT_NAMES]
+                + [f"cell{c:02d}_vr_bin_{b:02d}" for c in range(self.n_cells) for b in range(self.n_vbins)])
 
     def cell_labels(self) -> list[str]:
         out = []
@@ -123,7 +189,7 @@ class SummarySpec:
         return np.where(ok, ir * self.n_lat + ib, -1).astype(np.int64)
 
     def to_dict(self) -> dict:
-        return {
+        d = {
             "r_edges": list(self.r_edges),
             "lat_edges": list(self.lat_edges),
             "min_ess": self.min_ess,
@@ -131,10 +197,17 @@ class SummarySpec:
             "stats": list(STAT_NAMES),
             "components": ["v_r", "v_theta*sign(z)", "v_phi*sign(x*y)"],
         }
+        if self.vr_edges:  # absent when unused: the records of emulators trained before it stay as they were
+            d["vr_edges"] = list(self.vr_edges)
+        if self.tan_scale:
+            d["tan_scale"], d["tan_soft"] = self.tan_scale, self.tan_soft
+            f = f"sqrt(v_r**2+{self.tan_soft:g}**2)/{self.tan_scale:g}"
+            d["components"] = ["v_r", f"v_theta*sign(z)*{f}", f"v_phi*sign(x*y)*{f}"]
+        return d
 
     @classmethod
     def from_dict(cls, d: dict) -> "SummarySpec":
-        d = {k: v for k, v in d.items() if k in ("r_edges", "lat_edges", "min_ess", "n_boot")}
+        d = {k: v for k, v in d.items() if k in ("r_edges", "lat_edges", "min_ess", "n_boot", "vr_edges", "tan_scale", "tan_soft")}
         return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in d.items()})
 
 
@@ -156,6 +229,25 @@ def folded_components(pos, vel) -> np.ndarray:
     sz = np.where(z >= 0, 1.0, -1.0)
     sxy = np.where(x * y >= 0, 1.0, -1.0)
     return np.stack([v_r, v_theta * sz, v_phi * sxy], axis=-1)
+
+
+def tangential_scale(spec: SummarySpec, v_r) -> np.ndarray:
+    """``s(v_r) = tan_scale / sqrt(v_r² + tan_soft²)``: the cell Gaussians' tangential
+    components are the deflections divided by it (1 without ``spec.tan_scale``)."""
+    v_r = np.asarray(v_r, dtype=float)
+    if not spec.tan_scale:
+        return np.ones_like(v_r)
+    return spec.tan_scale / np.sqrt(v_r * v_r + spec.tan_soft**2)
+
+
+def model_components(spec: SummarySpec, comps) -> np.ndarray:
+    """The components the cell Gaussians describe, from folded (v_r, v_tf, v_pf) (n, 3): the
+    same, or with ``spec.tan_scale`` the deflections divided by :func:`tangential_scale`."""
+    if not spec.tan_scale:
+        return comps
+    out = np.array(comps, dtype=float, copy=True)
+    out[:, 1:] /= tangential_scale(spec, out[:, 0])[:, None]
+    return out
 
 
 def _cell_moments(cell, comps, w, n_cells):
@@ -191,6 +283,31 @@ def _stats_from_moments(W, m, s):
             axis=1,
         )
     return out
+
+
+def _vr_histogram(cell, v_r, w, n_cells, vr_edges):
+    """Weighted fraction of each cell's weight in each v_r bin, (n_cells, n_bins); NaN where a
+    cell is empty."""
+    nb = len(vr_edges) - 1
+    b = np.searchsorted(vr_edges, v_r, side="right") - 1
+    ok = (b >= 0) & (b < nb)
+    H = np.bincount(cell[ok] * nb + b[ok], weights=w[ok], minlength=n_cells * nb).reshape(n_cells, nb)
+    W = np.bincount(cell, weights=w, minlength=n_cells)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return H / W[:, None]
+
+
+def _cell_stats(spec: SummarySpec, cell, comps, w):
+    """The summary vector (spec.n_outputs,) of cell-assigned samples: the cell Gaussians' nine
+    statistics per cell, then (with ``spec.vr_edges``) each cell's v_r histogram as
+    ``log(f + VR_FRACTION_FLOOR)``."""
+    nc = spec.n_cells
+    W, m, s = _cell_moments(cell, comps, w, nc)
+    g = _stats_from_moments(W, m, s).reshape(-1)
+    if not spec.n_vbins:
+        return g
+    f = _vr_histogram(cell, comps[:, 0], w, nc, np.asarray(spec.vr_edges))
+    return np.concatenate([g, np.log(f + VR_FRACTION_FLOOR).reshape(-1)])
 
 
 @dataclass
@@ -239,7 +356,7 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
     cell = spec.cell_index(pos)
     keep = cell >= 0
     cell, w_k, orbit_k = cell[keep], w[keep], orbit[keep]
-    comps = folded_components(pos[keep], vel[keep])
+    comps = model_components(spec, folded_components(pos[keep], vel[keep]))
     nc = spec.n_cells
     W, m, s = _cell_moments(cell, comps, w_k, nc)
     W2 = np.bincount(cell, weights=w_k**2, minlength=nc)
@@ -252,15 +369,23 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
             f"summaries: {len(low)} cell(s) have an effective sample size below {spec.min_ess:g} "
             f"(first: {labels[low[0]]}, ESS {ess[low[0]]:.1f}); enlarge the bank or merge cells"
         )
-    values = _stats_from_moments(W, m, s).reshape(-1)
+    if spec.n_vbins:
+        f = _vr_histogram(cell, comps[:, 0], w_k, nc, np.asarray(spec.vr_edges))
+        with np.errstate(invalid="ignore"):
+            beyond = 1.0 - np.sum(f, axis=1)
+        bad = np.flatnonzero(beyond > 1e-3)
+        if len(bad):
+            raise ValueError(
+                f"summaries: {100 * beyond[bad[0]]:.1f}% of the stars of {spec.cell_labels()[bad[0]]} have v_r outside "
+                f"vr_edges (0-{spec.vr_edges[-1]:g} km/s); extend the last edge of [summaries] vr_edges")
+    values = _cell_stats(spec, cell, comps, w_k)
 
     # Poisson bootstrap over orbits
     uniq, inv = np.unique(orbit_k, return_inverse=True)
     boots = np.empty((spec.n_boot, values.size))
     for b in range(spec.n_boot):
         k = rng.poisson(1.0, size=len(uniq)).astype(float)
-        Wb, mb, sb = _cell_moments(cell, comps, w_k * k[inv], nc)
-        boots[b] = _stats_from_moments(Wb, mb, sb).reshape(-1)
+        boots[b] = _cell_stats(spec, cell, comps, w_k * k[inv])
     with np.errstate(invalid="ignore"):
         noise_var = np.nanvar(boots, axis=0, ddof=1)
     meta = {"n_orbits": int(len(uniq)), "n_boot": spec.n_boot, "noise": "poisson bootstrap over orbits"}
@@ -272,8 +397,7 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
         per = np.empty((len(labels), values.size))
         for j, r in enumerate(labels):
             sel = rep == r
-            Wr, mr, sr = _cell_moments(cell[sel], comps[sel], w_k[sel], nc)
-            per[j] = _stats_from_moments(Wr, mr, sr).reshape(-1)
+            per[j] = _cell_stats(spec, cell[sel], comps[sel], w_k[sel])
         ok = np.all(np.isfinite(per), axis=0)
         rep_var = np.var(per, axis=0, ddof=1) / len(labels)
         noise_var = np.where(ok, rep_var, noise_var)
@@ -285,8 +409,9 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
 
 def stats_to_gaussian(values, n_cells: int):
     """Per-cell mean vectors (..., n_cells, 3) and covariance matrices (..., n_cells, 3, 3) from
-    summary vectors (..., n_cells * 9); every input maps to a positive-definite covariance."""
-    v = np.asarray(values, dtype=float)
+    summary vectors (..., n_cells * 9, or longer: the first n_cells * 9 values are used); every
+    input maps to a positive-definite covariance."""
+    v = np.asarray(values, dtype=float)[..., :n_cells * N_STAT]
     v = v.reshape(v.shape[:-1] + (n_cells, N_STAT))
     mean = v[..., 0:3]
     L = np.zeros(v.shape[:-1] + (3, 3))
@@ -298,3 +423,18 @@ def stats_to_gaussian(values, n_cells: int):
     L[..., 2, 1] = v[..., 8]
     cov = L @ np.swapaxes(L, -1, -2)
     return mean, cov
+
+
+def stats_to_vr_density(values, spec: SummarySpec):
+    """Per-cell v_r histogram densities (..., n_cells, n_bins), per km/s, from summary vectors
+    (..., spec.n_outputs): each fraction ``exp(stat) - VR_FRACTION_FLOOR`` kept at least
+    :data:`VR_FRACTION_MIN`, the cell's fractions normalised to one, divided by the bin width."""
+    if not spec.n_vbins:
+        raise ValueError("summaries: this summary definition has no v_r histogram (vr_edges is empty)")
+    v = np.asarray(values, dtype=float)
+    if v.shape[-1] != spec.n_outputs:
+        raise ValueError(f"summaries: expected {spec.n_outputs} values per vector, got {v.shape[-1]}")
+    h = v[..., spec.n_gauss:].reshape(v.shape[:-1] + (spec.n_cells, spec.n_vbins))
+    f = np.maximum(np.exp(h) - VR_FRACTION_FLOOR, VR_FRACTION_MIN)
+    f /= np.sum(f, axis=-1, keepdims=True)
+    return f / np.diff(np.asarray(spec.vr_edges))

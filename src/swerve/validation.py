@@ -266,9 +266,12 @@ def emulator_accuracy(emulator, setup, theta_gal, outputs) -> dict:
     z = (np.asarray(pred) - Y) / np.sqrt(np.asarray(sd) ** 2 + V)
     names = setup.spec.output_names()
     by_stat = {}
+    zg = z[:, :setup.spec.n_gauss]
     for s, sname in enumerate(STAT_NAMES):
-        col = z[:, s::N_STAT]
+        col = zg[:, s::N_STAT]
         by_stat[sname] = float(np.sqrt(np.nanmean(col ** 2)))
+    if setup.spec.n_vbins:
+        by_stat["vr_bin"] = float(np.sqrt(np.nanmean(z[:, setup.spec.n_gauss:] ** 2)))
     absz = np.where(np.isfinite(z), np.abs(z), -np.inf)
     worst_idx = np.argmax(absz, axis=1)
     return {

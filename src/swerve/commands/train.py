@@ -103,7 +103,8 @@ def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
         "fit_wall_s": round(fit_s, 1),
         "bank_seconds_median": float(np.median(outputs["bank_seconds"])),
         "max_energy_error": float(np.max(outputs["max_energy_error"])),
-        "median_noise_sd_mean_vtf": float(np.median(np.sqrt(V.reshape(len(V), -1, 9)[..., 1]))),
+        "median_noise_sd_mean_vtf": float(np.median(np.sqrt(
+            V[:, :setup.spec.n_gauss].reshape(len(V), setup.spec.n_cells, -1)[..., 1]))),
         "trained_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
     }
     if setup.cfg["galaxy"]["halo_flattening"] == "potential":
