@@ -2,6 +2,8 @@
 density of v_r, with the tangential components Gaussian conditional on v_r (against scipy
 quadrature of the exact convolution with each sample's measurement error)."""
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy import integrate
@@ -23,6 +25,7 @@ from swerve.summaries import (
     stats_to_vr_density,
 )
 
+ROOT = Path(__file__).resolve().parents[1]
 EDGES = tuple(np.arange(0.0, 3201.0, 200.0))
 SPEC = SummarySpec(r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0), vr_edges=EDGES)
 #: the same with the tangential components scaled by v_r / 1000 km/s in the cell Gaussian
@@ -331,3 +334,14 @@ def test_histogram_emulator_error_is_marginalised(rng):
     se = np.std(np.exp(ll - ll.max())) / np.sqrt(n) / np.mean(np.exp(ll - ll.max()))
     assert correction > 0.05  # the error matters here (not a vacuous comparison)
     assert abs(correction - mc) < 0.1 * abs(mc) + 3 * se, (correction, mc, se)
+
+
+def test_bad_histogram_configuration_names_the_file(tmp_path):
+    """A training configuration with unusable v_r edges is refused in one line naming the file."""
+    from swerve.simulate import load_training_config
+
+    text = (ROOT / "training" / "smoke.toml").read_text()
+    bad = tmp_path / "bad.toml"
+    bad.write_text(text.replace("vr_edges = [0.0, 400.0", "vr_edges = [0.0, 4000.0"))
+    with pytest.raises(ValueError, match=r"bad\.toml: summaries vr_edges: expected at least three increasing"):
+        load_training_config(bad)

@@ -136,9 +136,12 @@ class TrainingSetup:
         self.selection = Selection(r_min=s["r_min"], r_max=s["r_max"], outgoing=s["outgoing"],
                                    v_min=s["v_min"] or None)
         sm = cfg["summaries"]
-        self.spec = SummarySpec(r_edges=tuple(sm["r_edges"]), lat_edges=tuple(sm["lat_edges"]),
-                                min_ess=sm["min_ess"], n_boot=sm["n_boot"], vr_edges=tuple(sm["vr_edges"]), tan_scale=sm["tan_scale"],
-                                tan_soft=sm["tan_soft"])
+        try:
+            self.spec = SummarySpec(r_edges=tuple(sm["r_edges"]), lat_edges=tuple(sm["lat_edges"]),
+                                    min_ess=sm["min_ess"], n_boot=sm["n_boot"], vr_edges=tuple(sm["vr_edges"]),
+                                    tan_scale=sm["tan_scale"], tan_soft=sm["tan_soft"])
+        except ValueError as e:
+            raise ValueError(f"{source}: {e}") from None
         if self.spec.r_edges[0] < self.selection.r_min or self.spec.r_edges[-1] > self.selection.r_max:
             raise ValueError(f"{source}: [summaries] r_edges must lie inside [selection] r_min..r_max")
         b = cfg["bank"]
