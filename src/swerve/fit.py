@@ -491,17 +491,7 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
     n_draw = min(200, len(res.samples), int(np.count_nonzero(res.weights)) if res.weights is not None else len(res.samples))
     draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=n_draw, replace=False, p=res.weights)]
     mu, sig = like.cell_gaussians(post.full(draws))
-    ylabel = None
-    if spec.tan_scale:  # the cell Gaussians describe the scaled deflections: compare like with like
-        from .summaries import tangential_scale
-
-        sc = tangential_scale(spec, terms.mean[..., 0])
-        st = st.copy(copy_data=True)
-        st["v_tf_obs"] = np.sum(w * terms.mean[..., 1] / sc, axis=1)
-        st["v_tf_err"] = np.sqrt(np.sum(w * terms.cov[..., 1, 1] / sc**2, axis=1))
-        ylabel = (r"scaled deflection $v_\theta\,\mathrm{sign}(z)\,\sqrt{v_r^2 + %g^2}\,/\,%g$ [km/s]"
-                  % (spec.tan_soft, spec.tan_scale))
-    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png", ylabel=ylabel)
+    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png")
 
 
 def _truth_from_meta(meta, names):

@@ -399,8 +399,6 @@ class _Packed:
     vgamma2: np.ndarray  # (n_samples, K): its second moment in each bin
     kap1: np.ndarray  # (n_samples,): regression of the sample's v_tf error on its v_r error
     kap2: np.ndarray  # (n_samples,): the same for v_pf
-    tsc: np.ndarray  # (n_samples,): scale s(m_r) of the cell Gaussian's tangential components (or 1)
-    tir: np.ndarray  # (n_samples,): -s'(m_r) / s(m_r) where they are scaled, else 0
     cond: float  # 1: v_r from the histogram, tangential components conditional on it; 0: joint Gaussian
 
 
@@ -450,7 +448,7 @@ def _vr_window(m_r, var_r, vr_edges, tol: float = 1e-10):
             np.ascontiguousarray(gamma2))
 
 
-def _pack(stars: StarTerms, vr_edges=(), tan_scale: float = 0.0, tan_soft: float = 300.0) -> _Packed:
+def _pack(stars: StarTerms, vr_edges=()) -> _Packed:
     n, k = stars.cell.shape
     inside = (stars.cell >= 0) & np.isfinite(stars.log_w)
     star_idx = np.repeat(np.arange(n), k).reshape(n, k)[inside]
@@ -482,13 +480,8 @@ def _pack(stars: StarTerms, vr_edges=(), tan_scale: float = 0.0, tan_soft: float
         vstart, vcount, vbeta, cond = np.zeros(len(w), np.int64), np.ones(len(w), np.int64), np.ones((len(w), 1)), 0.0
         vgamma, vgamma2 = np.zeros((len(w), 1)), np.zeros((len(w), 1))
         kap = np.zeros((len(w), 2))
-    if tan_scale:  # s = tan_scale / sqrt(m_r² + tan_soft²) and -(d s / d m_r) / s
-        h = mean[:, 0] ** 2 + tan_soft**2
-        tsc, tir = np.ascontiguousarray(tan_scale / np.sqrt(h)), np.ascontiguousarray(mean[:, 0] / h)
-    else:
-        tsc, tir = np.ones(len(w)), np.zeros(len(w))
     return _Packed(cell[starts[:-1]].astype(np.int64), starts, seg_star, n, cols, chunk, vstart, vcount, vbeta,
-                   vgamma, vgamma2, np.ascontiguousarray(kap[:, 0]), np.ascontiguousarray(kap[:, 1]), tsc, tir, cond)
+                   vgamma, vgamma2, np.ascontiguousarray(kap[:, 0]), np.ascontiguousarray(kap[:, 1]), cond)
 
 
 @intrinsic
@@ -568,8 +561,7 @@ def _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, x00, x10, x11, x20, x21, x22
 
 
 @nb.njit(fastmath=True, inline="always", cache=True)
-def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, y0, y1, y2, wj, dl, dv, k1, k2,
-               sc, ir):
+def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, y0, y1, y2, wj, dl, dv, k1, k2):
     """One sample's tangential density conditional on its v_r (without the (2π)^-1), for the
     histogram model; ``wj`` carries the sample's weight times its radial density.
 
@@ -584,32 +576,19 @@ def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, 
     Exact for a histogram flat over the v_r error; near an edge the two moments are matched (the
     residual is then a mixture, not a Gaussian).
 
-    With scaled tangential components (see :class:`swerve.summaries.SummarySpec`) the cell
-    Gaussian describes ``τ = u_⊥ / s(u_r)``, ``s = tan_scale / sqrt(u_r² + tan_soft²)``; with
-    ``sc = s(m_r)`` and ``ir = -s'(m_r) / s(m_r) = m_r / (m_r² + tan_soft²)``:
-    ``r = m_⊥ - s τ̄``, ``τ̄ = μ_⊥ + b (m_r - μ_r)``, ``S`` becomes ``s² S`` and ``b`` in the
-    error terms becomes ``B = ∂u_⊥/∂u_r = s (b - τ̄ ir)`` (linearised in the v_r error, a few
-    km/s against ``sqrt(m_r² + tan_soft²)`` ≥ 300 km/s). ``sc = 1, ir = 0``: the unscaled model
-    above.
-
     Returns ``(p, p Jᵀ M⁻¹ r, p Jᵀ M⁻¹ J)`` flattened like :func:`_term`, with
-    ``J = ∂r/∂μ = s [b, -I]`` up to sign (the small dependence of ``B`` on μ left out)."""
+    ``J = ∂r/∂μ = [b, -I]`` up to sign."""
     d0 = y0 - u0
-    t1 = u1 + b1 * d0
-    t2 = u2 + b2 * d0
-    c1 = sc * (b1 - t1 * ir)
-    c2 = sc * (b2 - t2 * ir)
-    s2 = sc * sc
-    m11 = s2 * s11 + x11 - 2.0 * c1 * x10 + c1 * c1 * x00
-    m21 = s2 * s21 + x21 - c1 * x20 - c2 * x10 + c1 * c2 * x00
-    m22 = s2 * s22 + x22 - 2.0 * c2 * x20 + c2 * c2 * x00
-    e1 = c1 - k1
-    e2 = c2 - k2
+    m11 = s11 + x11 - 2.0 * b1 * x10 + b1 * b1 * x00
+    m21 = s21 + x21 - b1 * x20 - b2 * x10 + b1 * b2 * x00
+    m22 = s22 + x22 - 2.0 * b2 * x20 + b2 * b2 * x00
+    e1 = b1 - k1
+    e2 = b2 - k2
     m11 += e1 * e1 * dv
     m21 += e1 * e2 * dv
     m22 += e2 * e2 * dv
-    r1 = y1 - sc * t1 - e1 * dl
-    r2 = y2 - sc * t2 - e2 * dl
+    r1 = y1 - u1 - b1 * d0 - e1 * dl
+    r2 = y2 - u2 - b2 * d0 - e2 * dl
     det = m11 * m22 - m21 * m21
     inv = 1.0 / det
     i11 = m22 * inv
@@ -619,17 +598,15 @@ def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, 
     z2 = i21 * r1 + i22 * r2
     q = r1 * z1 + r2 * z2
     p = wj * fast_exp(-0.5 * q) * math.sqrt(inv)
-    ps = p * sc
-    pss = ps * sc
-    return (p, -ps * (b1 * z1 + b2 * z2), ps * z1, ps * z2,
-            pss * (b1 * b1 * i11 + 2.0 * b1 * b2 * i21 + b2 * b2 * i22), -pss * (b1 * i11 + b2 * i21), pss * i11,
-            -pss * (b1 * i21 + b2 * i22), pss * i21, pss * i22)
+    return (p, -p * (b1 * z1 + b2 * z2), p * z1, p * z2,
+            p * (b1 * b1 * i11 + 2.0 * b1 * b2 * i21 + b2 * b2 * i22), -p * (b1 * i11 + b2 * i21), p * i11,
+            -p * (b1 * i21 + b2 * i22), p * i21, p * i22)
 
 
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
-                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mu, sig, dens,
-                    out, want_grad, grad, fisher):
+                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mu, sig, dens, out,
+                    want_grad, grad, fisher):
     """out[w, i] = log sum_k w_ik N(m_ik; mu[w, c], sig[w, c] + C_ik), summed over each star's
     (star, cell) segments; sig holds the 6 lower-triangle entries (00, 10, 11, 20, 21, 22).
     One walker at a time, vectorised over a segment's samples, parallel over (walker, chunk of
@@ -690,7 +667,7 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                     dl = pg / pr if pr > 0.0 else 0.0
                     dv = ph / pr - dl * dl - c00[j] if pr > 0.0 else 0.0
                     t = _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, c00[j], c10[j], c11[j], c20[j], c21[j],
-                                   c22[j], m0[j], m1[j], m2[j], w[j] * pr, dl, dv, kap1[j], kap2[j], tsc[j], tir[j])
+                                   c22[j], m0[j], m1[j], m2[j], w[j] * pr, dl, dv, kap1[j], kap2[j])
                 else:
                     t = _term(a00, a10, a11, a20, a21, a22, u0, u1, u2, c00[j], c10[j], c11[j], c20[j], c21[j],
                               c22[j], m0[j], m1[j], m2[j], w[j])
@@ -748,8 +725,8 @@ _PAD_FROM = 5
 
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
-                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mub, sigb, densb,
-                    out, want_grad, grad, fisher):
+                    vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mub, sigb, densb, out,
+                    want_grad, grad, fisher):
     """:func:`_loglike_kernel` for blocks of :data:`_WALKER_BLOCK` walkers, vectorised over the
     walkers of a block (every sample meets 16 walkers in the vector registers; a segment holds
     only ~40 samples, too few to fill them), parallel over (block, chunk of stars) pairs.
@@ -800,41 +777,26 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                     v0 = vstart[j]
                     k1 = kap1[j]
                     k2 = kap2[j]
-                    scj = tsc[j]
-                    irj = tir[j]
-                    if vcount[j] == 1:  # inside one bin: δ and the variance do not depend on the walker
-                        bq = vbeta[j, 0]
-                        d1 = vgamma[j, 0] / bq if bq > 0.0 else 0.0
-                        v1 = vgamma2[j, 0] / bq - d1 * d1 - x00 if bq > 0.0 else 0.0
+                    pr[:] = 0.0
+                    pg[:] = 0.0
+                    ph[:] = 0.0
+                    for q in range(vcount[j]):
+                        bq = vbeta[j, q]
+                        gq = vgamma[j, q]
+                        hq = vgamma2[j, q]
                         for k in range(B):
-                            pr[k] = bq * densb[bi, c, v0, k]
-                            pg[k] = d1
-                            ph[k] = v1
-                    else:
-                        pr[:] = 0.0
-                        pg[:] = 0.0
-                        ph[:] = 0.0
-                        for q in range(vcount[j]):
-                            bq = vbeta[j, q]
-                            gq = vgamma[j, q]
-                            hq = vgamma2[j, q]
-                            for k in range(B):
-                                dq = densb[bi, c, v0 + q, k]
-                                pr[k] += bq * dq
-                                pg[k] += gq * dq
-                                ph[k] += hq * dq
-                        for k in range(B):  # now δ and the variance change
-                            ok = pr[k] > 0.0
-                            ipr = 1.0 / pr[k] if ok else 0.0
-                            dk = pg[k] * ipr
-                            ph[k] = ph[k] * ipr - dk * dk - x00 if ok else 0.0
-                            pg[k] = dk
+                            dq = densb[bi, c, v0 + q, k]
+                            pr[k] += bq * dq
+                            pg[k] += gq * dq
+                            ph[k] += hq * dq
                     for k in range(B):
-                        dl = pg[k]
-                        dv = ph[k]
+                        ok = pr[k] > 0.0
+                        ipr = 1.0 / pr[k] if ok else 0.0
+                        dl = pg[k] * ipr
+                        dv = ph[k] * ipr - dl * dl - x00 if ok else 0.0
                         t = _term_cond(mub[bi, c, 0, k], mub[bi, c, 1, k], mub[bi, c, 2, k], b1[k], b2[k], s11[k],
                                        s21[k], s22[k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj * pr[k], dl, dv,
-                                       k1, k2, scj, irj)
+                                       k1, k2)
                         tot[k] += t[0]
                         for m in range(9):
                             G[m, k] += t[1 + m]
@@ -877,7 +839,7 @@ def _run_kernels(p: "_Packed", mu, tri, want_grad: bool, dens=None):
         dens = np.concatenate([dens, np.repeat(dens[-1:], pad, axis=0)])
         return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens))
     lognorm = (1.5 - 0.5 * p.cond) * _LOG_2PI
-    vr = (p.vstart, p.vcount, p.vbeta, p.vgamma, p.vgamma2, p.kap1, p.kap2, p.tsc, p.tir, float(p.cond), lognorm)
+    vr = (p.vstart, p.vcount, p.vbeta, p.vgamma, p.vgamma2, p.kap1, p.kap2, float(p.cond), lognorm)
     out = np.empty((W, p.n_star))
     grad = np.zeros((W, nc, 3))
     fisher = np.zeros((W, nc, 6))
@@ -901,7 +863,7 @@ def _run_kernels(p: "_Packed", mu, tri, want_grad: bool, dens=None):
 
 @nb.njit(cache=True)
 def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
-                   vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, tsc, tir, cond, lognorm, mu, sig, dens):
+                   vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mu, sig, dens):
     """log-likelihood of star i for one walker, in log space (for sums that underflow)."""
     best = -np.inf
     vals = []
@@ -932,19 +894,14 @@ def _star_logspace(seg_cell, seg_start, seg_star, i, m0, m1, m2, c00, c10, c11, 
                 dv = ph / pr - dl * dl - c00[j]
                 b1 = sig[c, 1] / sig[c, 0]
                 b2 = sig[c, 3] / sig[c, 0]
-                sc, ir = tsc[j], tir[j]
-                t1 = mu[c, 1] + b1 * d[0]
-                t2 = mu[c, 2] + b2 * d[0]
-                g1 = sc * (b1 - t1 * ir)
-                g2 = sc * (b2 - t2 * ir)
-                e1 = g1 - kap1[j]
-                e2 = g2 - kap2[j]
+                e1 = b1 - kap1[j]
+                e2 = b2 - kap2[j]
                 M = np.empty((2, 2))
-                M[0, 0] = sc * sc * (sig[c, 2] - b1 * sig[c, 1]) + c11[j] - 2 * g1 * c10[j] + g1 * g1 * c00[j] + e1 * e1 * dv
-                M[1, 0] = M[0, 1] = (sc * sc * (sig[c, 4] - b1 * sig[c, 3]) + c21[j] - g1 * c20[j] - g2 * c10[j]
-                                     + g1 * g2 * c00[j] + e1 * e2 * dv)
-                M[1, 1] = sc * sc * (sig[c, 5] - b2 * sig[c, 3]) + c22[j] - 2 * g2 * c20[j] + g2 * g2 * c00[j] + e2 * e2 * dv
-                r = np.array([m1[j] - sc * t1 - e1 * dl, m2[j] - sc * t2 - e2 * dl])
+                M[0, 0] = sig[c, 2] - b1 * sig[c, 1] + c11[j] - 2 * b1 * c10[j] + b1 * b1 * c00[j] + e1 * e1 * dv
+                M[1, 0] = M[0, 1] = (sig[c, 4] - b1 * sig[c, 3] + c21[j] - b1 * c20[j] - b2 * c10[j] + b1 * b2 * c00[j]
+                                     + e1 * e2 * dv)
+                M[1, 1] = sig[c, 5] - b2 * sig[c, 3] + c22[j] - 2 * b2 * c20[j] + b2 * b2 * c00[j] + e2 * e2 * dv
+                r = np.array([d[1] - b1 * d[0] - e1 * dl, d[2] - b2 * d[0] - e2 * dl])
                 L2 = np.linalg.cholesky(M)
                 y2 = np.linalg.solve(L2, r)
                 vals.append(math.log(w[j] * pr) - 0.5 * np.sum(y2 * y2) - math.log(L2[0, 0] * L2[1, 1]))
@@ -1050,7 +1007,7 @@ class Likelihood:
         self._cache = {}  # what -> (unit-cube point where computed, value): "sd", "mean_cov_factor"
         self._last_prediction = None  # (theta, emulated summaries) of the last cell model
         self.parameter_names = list(emulator.parameter_names)
-        self._packed = _pack(stars, spec.vr_edges, spec.tan_scale, spec.tan_soft)
+        self._packed = _pack(stars, spec.vr_edges)
         nc = spec.n_cells
         self._mean_idx = (np.arange(nc)[:, None] * N_STAT + np.arange(3)[None, :]).ravel()
         if spec.n_vbins:
@@ -1175,7 +1132,7 @@ class Likelihood:
         correction, which belongs to no single star)."""
         return self._evaluate(np.atleast_2d(np.asarray(theta, dtype=float)), False)[0]
 
-    def _histogram_correction(self, theta, grad, fisher) -> np.ndarray:
+    def _histogram_correction(self, theta, grad) -> np.ndarray:
         """The catalog-level marginalisation of the emulator's error in the cell means *and* the
         v_r histograms (emulators with ``vr_edges``), per walker.
 
@@ -1216,7 +1173,7 @@ class Likelihood:
             E[np.diag_indices_from(E)] += 1e-12 * np.max(np.diag(E)) + 1e-300
             Lf = np.linalg.cholesky(E)
             # P at the centre: the means' from the kernel, the histogram's multinomial
-            _, _, _, f0 = self._evaluate_full(centre)
+            _, _, f0 = self._evaluate(centre, True)
             n = len(idx)
             P = np.zeros((n, n))
             for c in range(nc):
@@ -1252,11 +1209,6 @@ class Likelihood:
         y = g @ Q
         return 0.5 * np.einsum("wi,wi->w", y, y) - 0.5 * logdet
 
-    def _evaluate_full(self, theta):
-        """(per-star logs, None, gradient, Fisher) of the kernel at theta (for the corrections)."""
-        out, grad, fisher = self._evaluate(np.atleast_2d(theta), True)
-        return out, None, grad, fisher
-
     def __call__(self, theta) -> np.ndarray:
         """Total log-likelihood, (W,) for theta of shape (W, d) (or a float for (d,))."""
         theta = np.asarray(theta, dtype=float)
@@ -1264,7 +1216,7 @@ class Likelihood:
         if self.emulator_error == "catalog":
             out, grad, fisher = self._evaluate(th2, True)
             if self.spec.n_vbins:
-                tot = out.sum(axis=1) + self._histogram_correction(th2, grad, fisher)
+                tot = out.sum(axis=1) + self._histogram_correction(th2, grad)
             else:
                 tot = out.sum(axis=1) + self.emulator_correction(grad, fisher, self._mean_cov_factor(th2))
         else:

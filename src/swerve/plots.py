@@ -97,13 +97,12 @@ def corner_plot(samples, names, path, truths=None, weights=None):
     return path
 
 
-def posterior_predictive(stars, mu, sig, spec, path, ylabel=None):
+def posterior_predictive(stars, mu, sig, spec, path):
     """Observed against emulated folded deflections v_θ' in each position cell.
 
     ``stars``: table with ``cell``, ``v_tf_obs``, ``v_tf_err`` (weighted over each star's
     samples); ``mu``/``sig``: emulated cell means and covariances of posterior draws,
-    (n_draws, n_cells, 3) and (n_draws, n_cells, 3, 3); ``ylabel``: the quantity, when the
-    cell Gaussians describe a scaled deflection (``spec.tan_scale``).
+    (n_draws, n_cells, 3) and (n_draws, n_cells, 3, 3).
     """
     plt = _pyplot()
     n_cells = spec.n_cells
@@ -126,7 +125,7 @@ def posterior_predictive(stars, mu, sig, spec, path, ylabel=None):
     ax.plot(x, means, "D", color="#d95f02", ms=6, label="stars: inverse-variance mean")
     ax.set_xticks(x)
     ax.set_xticklabels(spec.cell_labels(), rotation=60, ha="right", fontsize=7)
-    ax.set_ylabel(ylabel or r"folded deflection $v_\theta\,\mathrm{sign}(z)$ [km/s]")
+    ax.set_ylabel(r"folded deflection $v_\theta\,\mathrm{sign}(z)$ [km/s]")
     span = np.nanmax(np.abs(np.concatenate([hi, lo, np.nan_to_num(np.asarray(means))]))) * 3 + 5
     ax.set_ylim(-span, span)
     ax.axhline(0, color="0.6", lw=0.8)

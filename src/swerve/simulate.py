@@ -64,10 +64,6 @@ TRAIN_SCHEMA = Schema("train", (
         Key("n_boot", "int", 48, min=8, doc="bootstrap replicates for the simulation noise"),
         Key("vr_edges", "list[float]", [], min=0.0,
             doc="edges of the per-cell v_r histogram, km/s, from 0 ([]: v_r modelled by the cell Gaussian)"),
-        Key("tan_scale", "float", 0.0, min=0.0,
-            doc="km/s: the cell Gaussians describe the deflections times sqrt(v_r² + tan_soft²) / tan_scale "
-            "(needs vr_edges; 0: unscaled)"),
-        Key("tan_soft", "float", 300.0, min=1.0, doc="km/s: see tan_scale"),
     )),
     Section("bank", (
         Key("n_orbits", "int", 4000, min=16, doc="orbits per design point (positive octant)"),
@@ -138,8 +134,7 @@ class TrainingSetup:
         sm = cfg["summaries"]
         try:
             self.spec = SummarySpec(r_edges=tuple(sm["r_edges"]), lat_edges=tuple(sm["lat_edges"]),
-                                    min_ess=sm["min_ess"], n_boot=sm["n_boot"], vr_edges=tuple(sm["vr_edges"]),
-                                    tan_scale=sm["tan_scale"], tan_soft=sm["tan_soft"])
+                                    min_ess=sm["min_ess"], n_boot=sm["n_boot"], vr_edges=tuple(sm["vr_edges"]))
         except ValueError as e:
             raise ValueError(f"{source}: {e}") from None
         if self.spec.r_edges[0] < self.selection.r_min or self.spec.r_edges[-1] > self.selection.r_max:

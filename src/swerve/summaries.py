@@ -34,8 +34,7 @@ fixed edges (km/s), one statistic per bin, ``log(f + VR_FRACTION_FLOOR)`` with `
 weighted fraction of the cell's stars in the bin; the likelihood then uses the histogram as
 the density of v_r and the Gaussian only for the tangential components conditional on v_r
 (:mod:`swerve.likelihood`). The histogram outputs follow the ``n_cells × 9`` Gaussian ones, cell
-by cell: ``cellCC_vr_bin_BB``. With ``tan_scale`` also set (an experimental option), the
-Gaussian describes the deflections times about ``v_r / tan_scale`` (see :class:`SummarySpec`).
+by cell: ``cellCC_vr_bin_BB``.
 
 Simulation noise: every summary gets a variance from a Poisson bootstrap over orbits (each
 orbit of the bank, with all its samples, is one independent unit; samples along one
@@ -81,23 +80,6 @@ class SummarySpec:
     vr_edges : tuple of float
         Edges of the per-cell histogram of v_r, km/s, increasing from 0 (empty: no histogram,
         the v_r density is the cell Gaussian's, as in emulators trained before it existed).
-    tan_scale : float
-        ``v0`` in km/s (needs ``vr_edges``): the cell Gaussians describe
-        ``(v_r, v_tf / s(v_r), v_pf / s(v_r))`` with ``s(v) = v0 / sqrt(v² + v_soft²)``, the
-        deflections times (nearly) the radial speed. A deflection is a kick accumulated over the
-        flight, ∝ 1/v_r at a given place, so the deflections themselves have a conditional mean
-        and spread that change many-fold with v_r inside a cell (measured in the innermost cell
-        of the default domain's spherical Galaxy, ``benchmarks/diagnose_model.py shape``: spread
-        of v_tf 10 km/s at v_r 300-600 km/s, 1 km/s at 2000-3200, against the cell Gaussian's
-        single 28), which no Gaussian describes; the scaled ones
-        are nearly independent of v_r. 0: unscaled (the default). Measured
-        (``benchmarks/RESULTS.md``, "Calibration"): with ``tan_scale = 1000`` the disk mass of
-        800-star mocks came out 0.16-0.25e11 Msun high in four of four, against unbiased without
-        it; an experimental option, not used by the shipped emulator.
-    tan_soft : float
-        ``v_soft`` in km/s: below it the scale stops growing (stars near their turning point,
-        v_r → 0, have finite deflections, and the likelihood linearises ``s`` over each star's
-        v_r error).
     """
 
     r_edges: tuple = (10.0, 20.0, 35.0, 60.0, 100.0, 250.0)
@@ -105,8 +87,6 @@ class SummarySpec:
     min_ess: float = 30.0
     n_boot: int = 64
     vr_edges: tuple = ()
-    tan_scale: float = 0.0
-    tan_soft: float = 300.0
 
     def __post_init__(self):
         r = np.asarray(self.r_edges, dtype=float)
@@ -124,14 +104,6 @@ class SummarySpec:
             raise ValueError(f"summaries vr_edges: expected at least three increasing speeds from 0 km/s "
                              f"(or none), got {self.vr_edges!r}")
         object.__setattr__(self, "vr_edges", tuple(float(x) for x in v))
-        if not (np.isfinite(self.tan_scale) and self.tan_scale >= 0):
-            raise ValueError(f"summaries tan_scale: expected a speed >= 0 km/s, got {self.tan_scale!r}")
-        if self.tan_scale and not len(v):
-            raise ValueError("summaries tan_scale: needs vr_edges (the scaled model takes v_r from the histogram)")
-        object.__setattr__(self, "tan_scale", float(self.tan_scale))
-        if not (np.isfinite(self.tan_soft) and self.tan_soft > 0):
-            raise ValueError(f"summaries tan_soft: expected a speed > 0 km/s, got {self.tan_soft!r}")
-        object.__setattr__(self, "tan_soft", float(self.tan_soft))
         object.__setattr__(self, "r_edges", tuple(float(x) for x in r))
         object.__setattr__(self, "lat_edges", tuple(float(x) for x in b))
         object.__setattr__(self, "n_boot", int(self.n_boot))
@@ -199,15 +171,14 @@ class SummarySpec:
         }
         if self.vr_edges:  # absent when unused: the records of emulators trained before it stay as they were
             d["vr_edges"] = list(self.vr_edges)
-        if self.tan_scale:
-            d["tan_scale"], d["tan_soft"] = self.tan_scale, self.tan_soft
-            f = f"sqrt(v_r**2+{self.tan_soft:g}**2)/{self.tan_scale:g}"
-            d["components"] = ["v_r", f"v_theta*sign(z)*{f}", f"v_phi*sign(x*y)*{f}"]
         return d
 
     @classmethod
     def from_dict(cls, d: dict) -> "SummarySpec":
-        d = {k: v for k, v in d.items() if k in ("r_edges", "lat_edges", "min_ess", "n_boot", "vr_edges", "tan_scale", "tan_soft")}
+        if d.get("tan_scale"):
+            raise ValueError("summaries: recorded with tan_scale, an experimental cell model (scaled deflections) "
+                             "that swerve no longer has (it biased the disk mass); retrain the emulator without it")
+        d = {k: v for k, v in d.items() if k in ("r_edges", "lat_edges", "min_ess", "n_boot", "vr_edges")}
         return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in d.items()})
 
 
@@ -229,25 +200,6 @@ def folded_components(pos, vel) -> np.ndarray:
     sz = np.where(z >= 0, 1.0, -1.0)
     sxy = np.where(x * y >= 0, 1.0, -1.0)
     return np.stack([v_r, v_theta * sz, v_phi * sxy], axis=-1)
-
-
-def tangential_scale(spec: SummarySpec, v_r) -> np.ndarray:
-    """``s(v_r) = tan_scale / sqrt(v_r² + tan_soft²)``: the cell Gaussians' tangential
-    components are the deflections divided by it (1 without ``spec.tan_scale``)."""
-    v_r = np.asarray(v_r, dtype=float)
-    if not spec.tan_scale:
-        return np.ones_like(v_r)
-    return spec.tan_scale / np.sqrt(v_r * v_r + spec.tan_soft**2)
-
-
-def model_components(spec: SummarySpec, comps) -> np.ndarray:
-    """The components the cell Gaussians describe, from folded (v_r, v_tf, v_pf) (n, 3): the
-    same, or with ``spec.tan_scale`` the deflections divided by :func:`tangential_scale`."""
-    if not spec.tan_scale:
-        return comps
-    out = np.array(comps, dtype=float, copy=True)
-    out[:, 1:] /= tangential_scale(spec, out[:, 0])[:, None]
-    return out
 
 
 def _cell_moments(cell, comps, w, n_cells):
@@ -356,9 +308,9 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
     cell = spec.cell_index(pos)
     keep = cell >= 0
     cell, w_k, orbit_k = cell[keep], w[keep], orbit[keep]
-    comps = model_components(spec, folded_components(pos[keep], vel[keep]))
+    comps = folded_components(pos[keep], vel[keep])
     nc = spec.n_cells
-    W, m, s = _cell_moments(cell, comps, w_k, nc)
+    W = np.bincount(cell, weights=w_k, minlength=nc)
     W2 = np.bincount(cell, weights=w_k**2, minlength=nc)
     with np.errstate(invalid="ignore", divide="ignore"):
         ess = np.where(W2 > 0, W**2 / W2, 0.0)
@@ -369,8 +321,9 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
             f"summaries: {len(low)} cell(s) have an effective sample size below {spec.min_ess:g} "
             f"(first: {labels[low[0]]}, ESS {ess[low[0]]:.1f}); enlarge the bank or merge cells"
         )
+    values = _cell_stats(spec, cell, comps, w_k)
     if spec.n_vbins:
-        f = _vr_histogram(cell, comps[:, 0], w_k, nc, np.asarray(spec.vr_edges))
+        f = np.exp(values[spec.n_gauss:].reshape(nc, spec.n_vbins)) - VR_FRACTION_FLOOR
         with np.errstate(invalid="ignore"):
             beyond = 1.0 - np.sum(f, axis=1)
         bad = np.flatnonzero(beyond > 1e-3)
@@ -378,7 +331,6 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
             raise ValueError(
                 f"summaries: {100 * beyond[bad[0]]:.1f}% of the stars of {spec.cell_labels()[bad[0]]} have v_r outside "
                 f"vr_edges (0-{spec.vr_edges[-1]:g} km/s); extend the last edge of [summaries] vr_edges")
-    values = _cell_stats(spec, cell, comps, w_k)
 
     # Poisson bootstrap over orbits
     uniq, inv = np.unique(orbit_k, return_inverse=True)
