@@ -54,6 +54,7 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.utils.validation import check_is_fitted
 
 from . import __version__
+from .fastmath import fast_exp
 
 __all__ = [  # noqa: RUF022 - in reading order
     "FORMAT_NAME",
@@ -143,6 +144,41 @@ def _matern52_from(r5, e, constant, out):  # pragma: no cover - compiled
             for j in range(n):
                 x = r5[g, i, j]
                 out[g, i, j] = c * ((1.0 + x + x * x / 3.0) * e[g, i, j])
+
+
+@nb.njit(parallel=True, fastmath=True, cache=True)
+def _mean_fused(xs, XsT, constant, alpha, family, out):  # pragma: no cover - compiled
+    """``out[i, g] = Σ_j k_g(x_i, X_j) α_g[j]``: every component GP's mean at q points, the
+    cross-covariance never stored (the sampler's path: predict without variance).
+
+    The same kernel arithmetic as :func:`_scaled_distance` and :func:`_matern52_from`, with
+    :func:`swerve.fastmath.fast_exp` (relative error < 1e-13) in place of numpy's exp so that
+    the loop over training points vectorises, and the sum over them in the compiler's order
+    (``tests/test_emulate.py`` checks against scikit-learn to 1e-10)."""
+    G, q, d = xs.shape
+    n = XsT.shape[2]
+    for g in nb.prange(G):
+        c = constant[g]
+        a = alpha[g]
+        s = np.empty(n)
+        for i in range(q):
+            for j in range(n):
+                s[j] = 0.0
+            for k in range(d):
+                xk = xs[g, i, k]
+                row = XsT[g, k]
+                for j in range(n):
+                    diff = xk - row[j]
+                    s[j] += diff * diff
+            acc = 0.0
+            if family == 0:
+                for j in range(n):
+                    r5 = math.sqrt(s[j]) * _SQRT5
+                    acc += (1.0 + r5 + r5 * r5 / 3.0) * fast_exp(-r5) * a[j]
+            else:
+                for j in range(n):
+                    acc += fast_exp(-0.5 * s[j]) * a[j]
+            out[i, g] = c * acc
 
 
 def _cross_kernel(xs, XsT, constant, family, work=None):
@@ -512,6 +548,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         # ill-conditioned, as it is for noise-free simulations; the solve is what sklearn does.)
         self._Lf = [np.asfortranarray(L) for L in self.L_]
         self._code = _KERNELS[self.kernel][0]
+        self._alpha_c = np.ascontiguousarray(self.alpha_, dtype=float)
         if self.components_ is not None:
             self._W = self.components_ * self.score_scale_[:, None]  # scores -> standardised y
             self._W2 = self._W**2
@@ -587,13 +624,21 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             buf = _WORK.buf = (np.empty(shape), np.empty(shape))
         return buf
 
+    def _to_outputs(self, mt):
+        """Component means (q, G) -> emulated summaries (q, n_outputs)."""
+        z = mt @ self._W if self.components_ is not None else mt
+        return self.y_mean_ + self.y_scale_ * z
+
     def _predict_block(self, th, want_var, want_cov, include_noise):
         G = self.alpha_.shape[0]
         x = (th - self._lo) / self._span
         xs = np.ascontiguousarray(x[None, :, :] / self.length_scale_[:, None, :])
         prior = self.constant_ + self.noise_level_ if include_noise else self.constant_
-        K = _cross_kernel(xs, self._XsT, self.constant_, self._code, self._workspace(G, x.shape[0]))
         mt = np.empty((x.shape[0], G))
+        if not want_var:
+            _mean_fused(xs, self._XsT, self.constant_, self._alpha_c, self._code, mt)
+            return (self._to_outputs(mt),)
+        K = _cross_kernel(xs, self._XsT, self.constant_, self._code, self._workspace(G, x.shape[0]))
         var_t = np.empty((G, x.shape[0])) if want_var else None
         for g in range(G):
             # one matrix-vector product per component, as sklearn does (K @ alpha cancels
@@ -605,10 +650,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
                 # signal variance is large and the point is close to training points)
                 var_t[g] = prior[g] - np.einsum("ij,ji->i", v.T, v)
         pca = self.components_ is not None
-        z = mt @ self._W if pca else mt
-        mean = self.y_mean_ + self.y_scale_ * z
-        if not want_var:
-            return (mean,)
+        mean = self._to_outputs(mt)
         var_t = np.maximum(var_t, 0.0).T  # (q, G)
         if not want_cov:
             var_z = (var_t @ self._W2 + self.residual_var_) if pca else var_t
