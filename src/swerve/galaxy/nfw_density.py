@@ -33,7 +33,7 @@ Below ``tau_lo = e^t_lo`` the integrand is constant to O(tau_lo); above ``T = e^
 ``a_i^2 + tau ~ tau`` and the tail is the potential of a spherical NFW profile of scale radius
 ``r_s sqrt(T)``.  The reference (:func:`exact_scaled`) uses a fine step over a wide range
 (about 1e-14 relative); the fast form (:func:`build_nodes`, evaluated by
-:mod:`swerve.galaxy.expansion`) a coarse one (29 nodes, padded to 32 weightless ones for the vector loop; ~1e-7 to 2e-6 relative in force).
+:mod:`swerve.galaxy.expansion`) a coarse one (29 nodes; ~1e-7 to 2e-6 relative in force).
 """
 
 from __future__ import annotations
@@ -145,28 +145,16 @@ def exact_scaled(xi, q_y: float, q_z: float, step: float = REFERENCE_STEP,
     return phi, acc
 
 
-#: the fast form's node table is padded to a multiple of this many nodes (see :func:`build_nodes`)
-NODE_PAD = 16
-
-
 @lru_cache(maxsize=256)
 def build_nodes(q_y: float, q_z: float, step: float = FAST_STEP,
                 t_range: tuple[float, float] = FAST_T_RANGE) -> np.ndarray:
     """The fast form's table for :mod:`swerve.galaxy.expansion` (read-only, cached per shape).
 
     Depends on the shape only (the table is dimensionless), so halos that differ in mass or
-    scale radius share it.  Layout: ``[n, c_x * n, c_y * n, c_z * n, w * n]`` (each column
-    contiguous, so that the kernel's loop over nodes vectorises).
+    scale radius share it.  Layout: ``[n, (c_x, c_y, c_z, w) * n]``.
     """
     nodes = _nodes(float(q_y), float(q_z), step, *t_range)
-    # padded to a multiple of NODE_PAD with weightless copies of the last node: the kernel's
-    # vector loop then has no scalar remainder (measured: 29 nodes padded to 32 ran 2-5% faster than unpadded)
-    pad = -len(nodes) % NODE_PAD
-    if pad:
-        extra = np.repeat(nodes[-1:], pad, axis=0)
-        extra[:, 3] = 0.0
-        nodes = np.vstack([nodes, extra])
-    out = np.concatenate([[float(len(nodes))], nodes.T.ravel()])
+    out = np.concatenate([[float(len(nodes))], nodes.ravel()])
     out.setflags(write=False)
     return out
 
@@ -180,7 +168,7 @@ class NFWHaloDensityFlat(Component):
     positive everywhere, unlike :class:`~swerve.galaxy.components.NFWHaloPotentialFlat`.
 
     Forces and potential of the compiled form come from a fixed trapezoidal quadrature of the
-    ellipsoidal-shell integrals (29 nodes padded to 32, 2e-6 relative in force or better, conservative); :meth:`exact_potential`
+    ellipsoidal-shell integrals (29 nodes, 2e-6 relative in force or better, conservative); :meth:`exact_potential`
     and :meth:`exact_acceleration` evaluate the reference quadrature (~1e-14).  At
     ``q_y = q_z = 1`` both are the analytic spherical NFW halo.
 
