@@ -288,6 +288,44 @@ def test_fast_exp_matches_numpy():
     assert np.all(apply(below) == 0.0)
 
 
+def test_wide_vector_attribute_reaches_the_compiled_code():
+    """``prefer_512`` in a ``prange`` body shaped like the kernels' (a task loop around an inner
+    loop): on a CPU with AVX-512 the inner loop then runs in 512-bit registers and without it in
+    256-bit ones (LLVM's default there), so that a change in numba or llvmlite that drops the
+    attribute shows here rather than as a silent loss of speed; the results are the same."""
+    import re
+
+    import llvmlite.binding as llvm
+    import numba as nb
+
+    from swerve.fastmath import fast_exp, prefer_512
+
+    def wide(x, out):
+        for t in nb.prange(4):
+            prefer_512()
+            for i in range(t * 256, (t + 1) * 256):
+                out[i] = fast_exp(-x[i]) * x[i]
+
+    def plain(x, out):
+        for t in nb.prange(4):
+            for i in range(t * 256, (t + 1) * 256):
+                out[i] = fast_exp(-x[i]) * x[i]
+
+    fw = nb.njit(parallel=True, fastmath=True)(wide)  # not cached: the code can be inspected
+    fp = nb.njit(parallel=True, fastmath=True)(plain)
+    x = np.linspace(0.0, 50.0, 1024)
+    a, b = np.empty_like(x), np.empty_like(x)
+    fw(x, a)
+    fp(x, b)
+    np.testing.assert_allclose(a, x * np.exp(-x), rtol=1e-13, atol=0)
+    np.testing.assert_allclose(a, b, rtol=1e-15, atol=0)
+    if "+avx512f" in llvm.get_host_cpu_features().flatten().split(","):
+        def zmm_fma(f):
+            return len(re.findall(r"vfmadd\w+\s[^\n]*zmm", "".join(f.inspect_asm().values())))
+
+        assert zmm_fma(fw) > 0 and zmm_fma(fp) == 0
+
+
 def test_sampled_posterior_matches_analytic(rng):
     """End to end: emcee on the likelihood of a Gaussian toy emulator gives the analytic
     posterior of a (flat prior): mean and standard deviation within Monte Carlo error."""

@@ -54,7 +54,7 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.utils.validation import check_is_fitted
 
 from . import __version__
-from .fastmath import fast_exp
+from .fastmath import fast_exp, prefer_512
 
 __all__ = [  # noqa: RUF022 - in reading order
     "FORMAT_NAME",
@@ -161,10 +161,12 @@ def _mean_fused(xs, XsT, constant, alpha, family, out):  # pragma: no cover - co
     :func:`swerve.fastmath.fast_exp` (relative error < 1e-13) in place of numpy's exp so that
     the loop over training points vectorises, and the sum over them in the compiler's order
     (``tests/test_emulate.py``: within 1e-14 of Σ_j |k_j α_j| of scikit-learn's, the round-off
-    of that cancelling sum)."""
+    of that cancelling sum). 512-bit vectors where the CPU has them
+    (:func:`swerve.fastmath.prefer_512`)."""
     G, q, _ = xs.shape
     n = XsT.shape[2]
     for g in nb.prange(G):
+        prefer_512()
         c = constant[g]
         a = alpha[g]
         s = np.empty(n)
