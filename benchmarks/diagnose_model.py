@@ -4,6 +4,8 @@ from the stars, and where calibration misses sit.
     python benchmarks/diagnose_model.py cells                # a 4000-star mock at the q_z = 1 grid Galaxy
     python benchmarks/diagnose_model.py edges runs/calibration-floor/validation.json
     python benchmarks/diagnose_model.py shape                # v_r and deflection shapes, no errors
+    python benchmarks/diagnose_model.py fixed --param m_disk # repeated fits at fixed truths
+    python benchmarks/diagnose_model.py along --param m_disk # emulator against precise simulations
 
 ``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
 power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
@@ -16,6 +18,20 @@ folded velocities.
 standard deviation, skewness and excess kurtosis of v_r and the fraction a Gaussian of those
 moments puts below v_r = 0; then, at slope -0.5, the mean and spread of v_tf in bands of v_r
 against the cell Gaussian's linear regression and its single conditional spread.
+
+``fixed``: at three truths along ``--param`` (``--at``, as fractions of its range; the other
+parameters at ``--others`` of theirs, off the symmetric q_y = 1 point), ``--catalogs`` catalogs of
+``--n-stars`` stars, each from its own full simulation, fitted as the 64-sample calibration
+fits them; per parameter the coverage of the 68% and 95% intervals and the mean and spread of
+``z = (median - truth) / (68% half-width)``. A calibrated posterior need not cover at a fixed
+truth near a face (the prior's cut pulls the median inward by about 0.45 of z at 0.08 of the
+range from the face, for a Gaussian likelihood of that width); the spread of z tells the width.
+
+``along``: at the same truths, the summaries of a simulation of 8 banks of 4000 orbits (8× a
+training point's) at the domain's middle launch slope against the emulator, z per output by
+the emulator's standard deviation and the simulation's noise; and the value of ``--param`` that
+minimises χ² over all outputs with the others at the truth (where the emulator alone would put
+it).
 
 ``edges``: from a `swerve validate` report, the extreme simulation-based-calibration ranks
 (0, 1, n-1 or n of n draws) of truths in the outer eighth of each parameter's range against the
@@ -155,6 +171,93 @@ def edges(args):
         print(f"{n:8s} edge truths {ext[edge].sum():2d} / {edge.sum():2d} extreme; interior {ext[~edge].sum():2d} / {(~edge).sum():2d}")
 
 
+def _truths(emu, param, at, others):
+    names = list(emu.parameter_names)
+    lo, hi = np.asarray(emu.bounds).T
+    for a in at:
+        u = np.full(len(names), others)
+        u[names.index(param)] = a
+        yield a, dict(zip(names, lo + (hi - lo) * u))
+
+
+def fixed(args):
+    import time
+
+    from swerve.emulate import load
+    from swerve.simulate import training_setup_from_dict
+    from swerve.validation import draw_catalogs, fit_many, parse_error_model, validation_bank
+
+    emu = load(args.emulator)
+    setup = training_setup_from_dict(emu.metadata["config"])
+    rng = np.random.default_rng(args.seed)
+    cfg = dict(samples=64, nwalkers=32, max_steps=2500, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49)
+    for a, truth in _truths(emu, args.param, args.at, args.others):
+        gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
+        launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
+        tasks = []
+        t0 = time.time()
+        for _ in range(args.catalogs):
+            bank = validation_bank(setup, gal, int(rng.integers(2 ** 31)))
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                tabs, _ = draw_catalogs(setup, gal, launch, bank, parse_error_model(args.errors), args.n_stars, 1, rng)
+            tasks.append((tabs[0], int(rng.integers(2 ** 31)), None))
+        res = fit_many(args.emulator, tasks, cfg, n_jobs=2)
+        print(f"== {args.param} at {a:.3g} of its range ({truth[args.param]:.4g}); {len(res)} catalogs, "
+              f"{time.time() - t0:.0f} s")
+        for n in emu.parameter_names:
+            j = list(res[0]["names"]).index(n)
+            med, l68, h68, l95, h95 = (np.array([r[k][j] for r in res]) for k in ("median", "lo68", "hi68", "lo95", "hi95"))
+            t = truth[n]
+            z = (med - t) / (0.5 * (h68 - l68))
+            print(f"  {n:7s} truth {t:<10.4g} coverage 68% {np.mean((l68 <= t) & (t <= h68)):.2f}, "
+                  f"95% {np.mean((l95 <= t) & (t <= h95)):.2f}; z mean {z.mean():+.2f} (± {z.std(ddof=1) / np.sqrt(len(z)):.2f}), "
+                  f"sd {z.std(ddof=1):.2f}")
+
+
+def along(args):
+    from swerve.bank import build_bank
+    from swerve.emulate import load
+    from swerve.population import population_from_bank
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import compute_summaries
+
+    emu = load(args.emulator)
+    setup = training_setup_from_dict(emu.metadata["config"])
+    b = setup.cfg["bank"]
+    names = list(emu.parameter_names)
+    lo, hi = np.asarray(emu.bounds).T
+    k = names.index(args.param)
+    grid = np.linspace(0.0, 1.0, 161)
+    rng = np.random.default_rng(args.seed)
+    R = 8
+    for a, truth in _truths(emu, args.param, args.at, args.others):
+        gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
+        launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
+        banks = [build_bank(gal, b["n_orbits"], int(rng.integers(2 ** 31)), t_max=setup.flight_time_max, dt=b["dt"],
+                            v_lo=b["v_lo"], v_hi=b["v_hi"], r_min_store=setup.spec.r_edges[0],
+                            r_max=setup.spec.r_edges[-1], rtol=b["rtol"]) for _ in range(R)]
+        parts = [population_from_bank(bk, launch, selection=setup.selection, galaxy=gal, mirror="none",
+                                      flight_time_max=setup.flight_time_max) for bk in banks]
+        off = np.cumsum([0] + [bk.n_orbits for bk in banks])
+        res = compute_summaries(setup.spec, np.concatenate([p.pos for p in parts]), np.concatenate([p.vel for p in parts]),
+                                np.concatenate([p.weight / R for p in parts]),
+                                np.concatenate([p.orbit + off[j] for j, p in enumerate(parts)]), rng,
+                                replicate=np.concatenate([np.full(p.n, j) for j, p in enumerate(parts)]))
+        y, v = np.asarray(res.values), np.asarray(res.noise_var)
+        th = np.repeat(np.array([truth[n] for n in names])[None], len(grid), axis=0)
+        th[:, k] = lo[k] + (hi[k] - lo[k]) * grid
+        yh, sd = emu.predict(th, return_std=True)
+        chi2 = np.nansum((yh - y) ** 2 / (sd ** 2 + v), axis=1)
+        yt, sdt = emu.predict(th[:1] * 0 + np.array([truth[n] for n in names]), return_std=True)
+        z = (yt[0] - y) / np.sqrt(sdt[0] ** 2 + v)
+        best = lo[k] + (hi[k] - lo[k]) * grid[np.argmin(chi2)]
+        chi_t = np.nansum(z ** 2)
+        print(f"{args.param} at {a:.3g} of its range ({truth[args.param]:.4g}): {len(z)} outputs, RMS z {np.sqrt(np.nanmean(z ** 2)):.2f}, "
+              f"mean z {np.nanmean(z):+.2f}, |z| > 3: {int(np.sum(np.abs(z) > 3))}; chi2 {chi_t:.0f} at the truth, "
+              f"{chi2.min():.0f} at {args.param} = {best:.4g} (the minimum along {args.param})")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = ap.add_subparsers(dest="what", required=True)
@@ -164,10 +267,22 @@ def main():
     sh = sub.add_parser("shape")
     sh.add_argument("--emulator", default="emulators/default")
     sh.add_argument("--q-z", type=float, default=1.0)
+    for name in ("fixed", "along"):
+        f = sub.add_parser(name)
+        f.add_argument("--emulator", default="emulators/default")
+        f.add_argument("--param", default="m_disk")
+        f.add_argument("--at", type=lambda t: [float(x) for x in t.split(",")], default=[0.5, 0.92, 0.08],
+                       help="truths, as fractions of the parameter's range (comma-separated)")
+        f.add_argument("--others", type=float, default=0.45, help="the other parameters, as a fraction of their ranges")
+        f.add_argument("--seed", type=int, default=5)
+        if name == "fixed":
+            f.add_argument("--catalogs", type=int, default=16)
+            f.add_argument("--n-stars", type=int, default=100)
+            f.add_argument("--errors", default="pm=0.02,vlos=5,dist=0.1")
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
-    {"cells": cells, "shape": shape, "edges": edges}[args.what](args)
+    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along}[args.what](args)
 
 
 if __name__ == "__main__":
