@@ -256,6 +256,9 @@ def along(args):
         print(f"{args.param} at {a:.3g} of its range ({truth[args.param]:.4g}): {len(z)} outputs, RMS z {np.sqrt(np.nanmean(z ** 2)):.2f}, "
               f"mean z {np.nanmean(z):+.2f}, |z| > 3: {int(np.sum(np.abs(z) > 3))}; chi2 {chi_t:.0f} at the truth, "
               f"{chi2.min():.0f} at {args.param} = {best:.4g} (the minimum along {args.param})")
+        stat = np.array([o.split("_", 1)[1] for o in emu.output_names])
+        print("    RMS z per statistic: " + ", ".join(f"{t} {np.sqrt(np.nanmean(z[stat == t] ** 2)):.2f}"
+                                                   for t in dict.fromkeys(stat)))
 
 
 def main():
