@@ -26,6 +26,8 @@ fits them; per parameter the coverage of the 68% and 95% intervals and the mean 
 ``z = (median - truth) / (68% half-width)``. A calibrated posterior need not cover at a fixed
 truth near a face (the prior's cut pulls the median inward by about 0.45 of z at 0.08 of the
 range from the face, for a Gaussian likelihood of that width); the spread of z tells the width.
+``--emulator-error`` refits the same catalogs (same ``--seed``) with another treatment of the
+emulator's error.
 
 ``along``: at the same truths, the summaries of a simulation of 8 banks of 4000 orbits (8× a
 training point's) at the domain's middle launch slope against the emulator, z per output by
@@ -190,7 +192,8 @@ def fixed(args):
     emu = load(args.emulator)
     setup = training_setup_from_dict(emu.metadata["config"])
     rng = np.random.default_rng(args.seed)
-    cfg = dict(samples=64, nwalkers=32, max_steps=2500, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49)
+    cfg = dict(samples=64, nwalkers=32, max_steps=2500, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49,
+               emulator_error=args.emulator_error)
     for a, truth in _truths(emu, args.param, args.at, args.others):
         gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
         launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
@@ -282,6 +285,8 @@ def main():
             f.add_argument("--catalogs", type=int, default=16)
             f.add_argument("--n-stars", type=int, default=100)
             f.add_argument("--errors", default="pm=0.02,vlos=5,dist=0.1")
+            f.add_argument("--emulator-error", default="catalog", choices=("catalog", "per-star", "none"),
+                           help="the fits' treatment of the emulator's error (the same seed refits the same catalogs)")
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
