@@ -6,6 +6,7 @@ from the stars, and where calibration misses sit.
     python benchmarks/diagnose_model.py shape                # v_r and deflection shapes, no errors
     python benchmarks/diagnose_model.py fixed --param m_disk # repeated fits at fixed truths
     python benchmarks/diagnose_model.py along --param m_disk # emulator against precise simulations
+    python benchmarks/diagnose_model.py sandwich             # information equality at the truth
 
 ``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
 power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
@@ -34,6 +35,16 @@ training point's) at the domain's middle launch slope against the emulator, z pe
 the emulator's standard deviation and the simulation's noise; and the value of ``--param`` that
 minimises χ² over all outputs with the others at the truth (where the emulator alone would put
 it).
+
+``sandwich``: at the same truths, ``--catalogs`` catalogs of ``--n-stars`` stars (each from its
+own full simulation, distance samples as the fits draw them) and, per parameter, the
+likelihood's score at the truth (central differences, 1e-4 of the range; per star) and its
+curvature (second differences of the total, 1e-2 of the range). For a correctly specified
+likelihood the score's variance equals the expected curvature (the information equality); a
+ratio ``Var(score) / E[-curvature]`` above 1 means posteriors too narrow by about its square
+root (Chandler & Bate 2007, Biometrika 94, 167, for the adjustment of composite likelihoods;
+from memory). Two estimates of the variance: across catalogs, and per catalog as the sum of
+the stars' squared scores (the stars are independent).
 
 ``edges``: from a `swerve validate` report, the extreme simulation-based-calibration ranks
 (0, 1, n-1 or n of n draws) of truths in the outer eighth of each parameter's range against the
@@ -264,6 +275,73 @@ def along(args):
                                                    for t in dict.fromkeys(stat)))
 
 
+def sandwich(args):
+    import time
+
+    from swerve.catalog import catalog_from_table, draw_samples
+    from swerve.emulate import load
+    from swerve.likelihood import Likelihood, prepare_stars, smoothed_samples
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import SummarySpec
+    from swerve.validation import draw_catalogs, parse_error_model, validation_bank
+
+    emu = load(args.emulator)
+    setup = training_setup_from_dict(emu.metadata["config"])
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    names = list(emu.parameter_names)
+    lo, hi = np.asarray(emu.bounds).T
+    span = hi - lo
+    d = len(names)
+    rng = np.random.default_rng(args.seed)
+    h1, h2 = 1e-4, 1e-2
+    for a, truth in _truths(emu, args.param, args.at, args.others):
+        t0 = time.time()
+        gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
+        launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
+        th = np.array([truth[n] for n in names])
+        # points: truth, ±h1 and ±h2 along each parameter (kept inside the domain: one-sided at a face)
+        pts = [th]
+        for k in range(d):
+            for h in (h1, h2):
+                for sgn in (1, -1):
+                    p = th.copy()
+                    p[k] += sgn * h * span[k]
+                    pts.append(p)
+        pts = np.clip(np.array(pts), lo, hi)
+        S, J, H = [], [], []
+        for _ in range(args.catalogs):
+            bank = validation_bank(setup, gal, int(rng.integers(2 ** 31)))
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                tabs, _ = draw_catalogs(setup, gal, launch, bank, parse_error_model(args.errors), args.n_stars, 1, rng)
+            cat = catalog_from_table(tabs[0], source="mock")
+            smp = smoothed_samples(cat, draw_samples(cat, 64, rng))
+            like = Likelihood(emu, prepare_stars(cat, smp, spec), spec, emulator_error="none")
+            ps = like.per_star(pts)  # (n_points, n_star)
+            tot = ps.sum(axis=1)
+            s_k, j_k, h_k = [], [], []
+            for k in range(d):
+                i = 1 + 4 * k
+                dx1 = (pts[i, k] - pts[i + 1, k]) / span[k]
+                s_i = (ps[i] - ps[i + 1]) / dx1  # per-star score, per unit of the range
+                dx2 = 0.5 * (pts[i + 2, k] - pts[i + 3, k]) / span[k]
+                h_k.append((tot[i + 2] - 2.0 * tot[0] + tot[i + 3]) / dx2**2)
+                s_k.append(s_i.sum())
+                j_k.append(np.sum(s_i**2))
+            S.append(s_k)
+            J.append(j_k)
+            H.append(h_k)
+        S, J, H = np.array(S), np.array(J), np.array(H)
+        print(f"== {args.param} at {a:.3g} of its range ({truth[args.param]:.4g}); {len(S)} catalogs of {args.n_stars} stars, "
+              f"{time.time() - t0:.0f} s")
+        for k, n in enumerate(names):
+            info = -H[:, k].mean()
+            print(f"  {n:7s} E[-curvature] {info:10.4g}; Var(score) across catalogs {S[:, k].var(ddof=1):10.4g} "
+                  f"(ratio {S[:, k].var(ddof=1) / info:5.2f}), sum of squared star scores {J[:, k].mean():10.4g} "
+                  f"(ratio {J[:, k].mean() / info:5.2f}); mean score {S[:, k].mean():+.3g} "
+                  f"(± {S[:, k].std(ddof=1) / np.sqrt(len(S)):.2g})")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = ap.add_subparsers(dest="what", required=True)
@@ -273,7 +351,7 @@ def main():
     sh = sub.add_parser("shape")
     sh.add_argument("--emulator", default="emulators/default")
     sh.add_argument("--q-z", type=float, default=1.0)
-    for name in ("fixed", "along"):
+    for name in ("fixed", "along", "sandwich"):
         f = sub.add_parser(name)
         f.add_argument("--emulator", default="emulators/default")
         f.add_argument("--param", default="m_disk")
@@ -281,8 +359,8 @@ def main():
                        help="truths, as fractions of the parameter's range (comma-separated)")
         f.add_argument("--others", type=float, default=0.45, help="the other parameters, as a fraction of their ranges")
         f.add_argument("--seed", type=int, default=5)
-        if name == "fixed":
-            f.add_argument("--catalogs", type=int, default=16)
+        if name in ("fixed", "sandwich"):
+            f.add_argument("--catalogs", type=int, default=16 if name == "fixed" else 32)
             f.add_argument("--n-stars", type=int, default=100)
             f.add_argument("--errors", default="pm=0.02,vlos=5,dist=0.1")
             f.add_argument("--emulator-error", default="catalog", choices=("catalog", "per-star", "none"),
@@ -290,7 +368,7 @@ def main():
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
-    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along}[args.what](args)
+    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along, "sandwich": sandwich}[args.what](args)
 
 
 if __name__ == "__main__":
