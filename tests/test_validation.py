@@ -112,6 +112,41 @@ def test_validate_ci_end_to_end(smoke_run, held_out_run, tmp_path, capsys):
     assert "calibration" in capsys.readouterr().out
 
 
+def test_held_out_run_of_an_older_emulator_is_accepted(smoke_run, held_out_run, tmp_path):
+    """An emulator trained before a configuration option existed records a configuration without
+    it (and that configuration's hash); a held-out run made now from the same file hashes the
+    option at its default. The two are the same training and must match (the shipped default
+    emulator predates ``[summaries] vr_edges``); another training configuration is still refused."""
+    import hashlib
+    import shutil
+
+    from swerve.config import config_hash
+    from swerve.validation import check_inputs
+
+    _, emu = smoke_run
+    old = tmp_path / "old-emulator"
+    shutil.copytree(emu, old)
+    doc = json.loads((old / "emulator.json").read_text())
+
+    def write(cfg):
+        doc["metadata"]["config"] = cfg
+        doc["metadata"]["config_hash"] = config_hash(cfg)
+        (old / "emulator.json").write_text(json.dumps(doc))
+        (old / "checksums.sha256").write_text("".join(
+            f"{hashlib.sha256((old / n).read_bytes()).hexdigest()}  {n}\n" for n in ("emulator.json", "arrays.npz")))
+
+    cfg = doc["metadata"]["config"]
+    without = {**cfg, "selection": {k: v for k, v in cfg["selection"].items() if k != "v_min"}}
+    assert cfg["selection"]["v_min"] == 0.0  # the option's default: the same training
+    write(without)
+    # the recorded hashes differ, so only reading the old configuration with today's schema matches them
+    assert doc["metadata"]["config_hash"] != json.loads((held_out_run / "run.json").read_text())["config_hash"]
+    check_inputs(old, held_out_run)  # accepted
+    write({**without, "bank": {**cfg["bank"], "n_orbits": 999}})
+    with pytest.raises(ValueError, match="another training configuration"):
+        check_inputs(old, held_out_run)
+
+
 def test_forecast_end_to_end(smoke_run, tmp_path, capsys):
     _, emu = smoke_run
     cfg = tmp_path / "fc.toml"

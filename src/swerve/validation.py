@@ -428,7 +428,11 @@ def check_inputs(emulator_dir, held_out_dir):
         raise ValueError(f"--emulator: {emulator_dir} records no training configuration; it was not made by swerve train")
     setup = training_setup_from_dict(meta["config"], source=f"{emulator_dir} (training configuration)")
     status = run_status(held_out_dir)
-    if status.config_hash != meta.get("config_hash"):
+    # the emulator's configuration as recorded, and as today's schema reads it (options added
+    # since, at their defaults, do not change the training): a held-out run made now hashes the latter
+    from .config import config_hash
+
+    if status.config_hash not in (meta.get("config_hash"), config_hash(setup.cfg)):
         raise ValueError(f"--held-out: {held_out_dir} was made with another training configuration "
                          f"(hash {status.config_hash[:12]}) than the emulator's ({str(meta.get('config_hash'))[:12]})")
     if not status.held_out:
