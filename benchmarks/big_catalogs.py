@@ -5,6 +5,7 @@ midpoints of the domain, slope -0.5), errors pm 0.02 mas/yr, vlos 5 km/s, 10% di
 fits the same catalogs with every emulator given (32 distance samples, 32 walkers).
 
     python benchmarks/big_catalogs.py --seed 11 emulators/default OTHER_EMULATOR ...
+    python benchmarks/big_catalogs.py --seed 11 --adjust emulators/default   # and adjusted
 """
 
 import argparse
@@ -20,6 +21,7 @@ def main():
     ap.add_argument("--seed", type=int, default=11)
     ap.add_argument("--n-stars", type=int, default=800)
     ap.add_argument("--catalogs", type=int, default=4)
+    ap.add_argument("--adjust", action="store_true", help="also fit with the experimental curvature adjustment")
     args = ap.parse_args()
 
     from swerve.emulate import load
@@ -48,10 +50,13 @@ def main():
         tasks.append((tabs[0], int(rng.integers(2 ** 31)), None))
     cfg = dict(samples=32, nwalkers=32, max_steps=3000, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49)
     print("truth: " + ", ".join(f"{k} {truth[k]:.4g}" for k in emu.parameter_names))
-    for path in args.emulators:
+    runs = [(path, cfg, "") for path in args.emulators]
+    if args.adjust:
+        runs += [(path, dict(cfg, adjust=True), " (curvature adjustment)") for path in args.emulators]
+    for path, c, label in runs:
         t0 = time.time()
-        res = fit_many(path, tasks, cfg, n_jobs=2)
-        print(f"{path}: {time.time() - t0:.0f} s; median [95% interval] per catalog")
+        res = fit_many(path, tasks, c, n_jobs=2)
+        print(f"{path}{label}: {time.time() - t0:.0f} s; median [95% interval] per catalog")
         for name in emu.parameter_names:
             j = list(res[0]["names"]).index(name)
             cells = [f"{r['median'][j]:.4g} [{r['lo95'][j]:.4g}, {r['hi95'][j]:.4g}]"

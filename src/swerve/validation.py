@@ -69,6 +69,8 @@ VALIDATE_SCHEMA = Schema("validate", (
                                                           "(swerve fit's [emulator] velocity_floor)"),
         Key("emulator_error", "str", "catalog", choices=("catalog", "per-star", "none"),
             doc="the emulator's error of the cell means: marginalised per catalog, folded per star, or ignored"),
+        Key("adjust", "bool", False, doc="experimental: widen the likelihood by its curvature adjustment at the "
+                                          "maximum (swerve.adjustment)"),
     ), doc="the in-memory fits"),
     Section("bank", (
         Key("n_orbits", "int", 0, min=0, doc="orbits per validation bank (0: the training configuration's)"),
@@ -340,11 +342,21 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
     like = Likelihood(emulator, stars, spec, velocity_floor=fit_cfg.get("velocity_floor", DEFAULT_VELOCITY_FLOOR),
                       emulator_error=fit_cfg.get("emulator_error", "catalog"))
     post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))
+    x_map = None
+    if fit_cfg.get("adjust"):
+        from .adjustment import AdjustedLikelihood, curvature_adjustment
+        from .sampling import find_map
+
+        x_map = find_map(post, rng)
+        lo, hi = np.asarray(emulator.bounds, dtype=float).T
+        full = post.full(x_map)[0]
+        C, _ = curvature_adjustment(like, full, lo, hi)
+        post = Posterior(AdjustedLikelihood(like, full, C, lo, hi), post.priors)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         res = sample_posterior(post, seed=int(rng.integers(2 ** 31)), nwalkers=fit_cfg["nwalkers"],
                                max_steps=fit_cfg["max_steps"], check_every=fit_cfg["check_every"],
-                               n_tau=fit_cfg["n_tau"], tau_rtol=fit_cfg["tau_rtol"])
+                               n_tau=fit_cfg["n_tau"], tau_rtol=fit_cfg["tau_rtol"], x_map=x_map)
     s = res.samples
     q = np.percentile(s, [2.5, 16, 50, 84, 97.5], axis=0)
     pick = rng.choice(len(s), size=fit_cfg["n_draws"], replace=len(s) < fit_cfg["n_draws"])
