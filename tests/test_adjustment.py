@@ -58,6 +58,20 @@ def test_adjustment_restores_the_correct_width(s_true, s_model):
     assert adj(theta_hat) == pytest.approx(like(theta_hat[None])[0])
 
 
+def test_fixed_parameters_are_left_alone():
+    """With a parameter fixed by its prior, only the free ones are adjusted: C is the identity on
+    the fixed one, and the free one gets the analytic factor s_model / s_true."""
+    rng = np.random.default_rng(6)
+    x = np.array([0.1, 0.0]) + rng.normal(size=(4000, 2)) * np.array([2.0, 1.5])
+    like = GaussianQuasi(x, [1.0, 1.0])  # both misspecified
+    lo, hi = np.array([-1.0, -1.0]), np.array([1.0, 1.0])
+    theta_hat = np.array([x[:, 0].mean(), 0.05])  # the second parameter fixed at 0.05
+    C, _ = curvature_adjustment(like, theta_hat, lo, hi, free=[0])
+    assert C[0, 0] == pytest.approx(0.5, rel=0.03)
+    np.testing.assert_array_equal(C[1], [0.0, 1.0])
+    np.testing.assert_array_equal(C[:, 1], [0.0, 1.0])
+
+
 def test_adjustment_never_narrows():
     """A likelihood wider than the data (s_model > s_true) is left alone: the adjustment only widens."""
     rng = np.random.default_rng(5)

@@ -18,7 +18,7 @@ import numpy as np
 
 
 def curvature_adjustment(like, theta_hat, low, high, h1: float = 0.02, radius: float = 0.1, n_fit: int = 96,
-                         flat: float = 1e-3, seed: int = 0):
+                         flat: float = 1e-3, seed: int = 0, free=None):
     """The matrix ``C`` (d, d) of the adjustment at ``theta_hat`` (natural units), and a dict of
     diagnostics (``H``, ``J`` per unit of each range, and ``kappa``, the eigenvalues of ``J``
     against ``H`` in ``H``'s informative subspace).
@@ -29,8 +29,30 @@ def curvature_adjustment(like, theta_hat, low, high, h1: float = 0.02, radius: f
     central differences over ``h1`` of each range, ``H`` from a quadratic fitted by least
     squares to the total at ``n_fit`` points within ``radius`` (unit-cube coordinates, inside
     the domain) of ``theta_hat``. Directions whose curvature is below ``flat`` of the largest
-    are not adjusted."""
-    th = np.asarray(theta_hat, dtype=float)
+    are not adjusted. ``free``: indices of the parameters to adjust (default all); the others
+    (fixed by their priors) keep ``theta_hat``'s values, and ``C`` is the identity on them."""
+    th_all = np.asarray(theta_hat, dtype=float)
+    free = np.arange(th_all.size) if free is None else np.asarray(free, dtype=int)
+    if len(free) < th_all.size:
+        lo_all, hi_all = np.asarray(low, dtype=float), np.asarray(high, dtype=float)
+
+        class _Sub:  # the likelihood as a function of the free parameters
+            def _full(self, t):
+                full = np.repeat(th_all[None], len(np.atleast_2d(t)), axis=0)
+                full[:, free] = np.atleast_2d(t)
+                return full
+
+            def per_star(self, t):
+                return like.per_star(self._full(t))
+
+            def __call__(self, t):
+                return like(self._full(t))
+
+        Cf, info = curvature_adjustment(_Sub(), th_all[free], lo_all[free], hi_all[free], h1, radius, n_fit, flat, seed)
+        C = np.eye(th_all.size)
+        C[np.ix_(free, free)] = Cf
+        return C, info
+    th = th_all
     low, high = np.asarray(low, dtype=float), np.asarray(high, dtype=float)
     span = high - low
     d = th.size

@@ -350,7 +350,7 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
         x_map = find_map(post, rng)
         lo, hi = np.asarray(emulator.bounds, dtype=float).T
         full = post.full(x_map)[0]
-        C, _ = curvature_adjustment(like, full, lo, hi)
+        C, _ = curvature_adjustment(like, full, lo, hi, free=post.free)
         post = Posterior(AdjustedLikelihood(like, full, C, lo, hi), post.priors)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
