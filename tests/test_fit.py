@@ -226,3 +226,25 @@ def test_ensemble_emulator_variance_is_close_to_per_walker(smoke_run, mock_catal
     fast = Likelihood(emu, terms, spec, emulator_variance="ensemble")(th)
     assert np.max(np.abs(exact - fast)) < 0.1
     assert not np.array_equal(exact, fast)
+
+
+def test_fit_with_the_curvature_adjustment(tmp_path, smoke_run, mock_catalog):
+    """``[likelihood] adjust``: the adjustment is recorded (its matrix, the score-to-curvature
+    ratios) and noted; intervals are no narrower than without it on the same catalog and seed
+    beyond Monte Carlo noise (the adjustment only widens; tests/test_adjustment.py checks its
+    size against the analytic case); a refit after a star is added samples anew."""
+    _, emu = smoke_run
+    plain = run_fit(mock_catalog, emu, tmp_path / "plain", load_fit_config(None, REWEIGHT))
+    cfg = load_fit_config(None, {**REWEIGHT, "likelihood": {"adjust": True}})
+    adj = run_fit(mock_catalog, emu, tmp_path / "adj", cfg)
+    rec = adj.summary["likelihood"]["adjustment"]
+    assert np.shape(rec["C"]) == (3, 3) and len(rec["kappa"]) >= 1
+    assert any("curvature adjustment" in n for n in adj.summary["notes"])
+    assert plain.summary["likelihood"]["adjustment"] is None
+    for n, p in plain.summary["parameters"].items():
+        assert adj.summary["parameters"][n]["std"] > 0.8 * p["std"], n
+    out = tmp_path / "refit"
+    _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg)
+    b = run_fit(mock_catalog, emu, out, cfg)
+    assert b.summary["sampler"]["method"] == "sampled"
+    assert any("not reweighted" in n for n in b.summary["notes"])

@@ -1,4 +1,5 @@
-"""Curvature adjustment of the likelihood (experimental: validation fits only, ``[fit] adjust``).
+"""Curvature adjustment of the likelihood (experimental, off by default: ``swerve fit``'s
+``[likelihood] adjust``, a validation configuration's ``[fit] adjust``).
 
 The per-cell Gaussian is a quasi-likelihood: its curvature overstates the information in some
 directions (``benchmarks/diagnose_model.py sandwich``: the score of the disk mass and the launch

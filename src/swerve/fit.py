@@ -75,6 +75,11 @@ FIT_SCHEMA = Schema("fit", (
             doc="after stars are added to a converged fit in the same folder: importance-reweight its chain by the "
                 "new stars (seconds; falls back to sampling when the weights are unreliable) or always sample anew"),
     )),
+    Section("likelihood", (
+        Key("adjust", "bool", False,
+            doc="experimental: widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment; "
+                "calibrates the launch slope, benchmarks/RESULTS.md); refits then sample anew"),
+    )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
     )),
@@ -246,8 +251,24 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     bounds = np.asarray(emu.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
     post = Posterior(like, priors)
-
     s = cfg["sampler"]
+    adjustment = None
+    if cfg["likelihood"]["adjust"]:
+        from .adjustment import AdjustedLikelihood, curvature_adjustment
+        from .sampling import find_map
+
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(limits=1, user_api="blas"):
+            x_map = find_map(post, np.random.default_rng(s["seed"]))
+            theta_hat = post.full(x_map)[0]
+            C, info = curvature_adjustment(like, theta_hat, bounds[:, 0], bounds[:, 1], free=post.free)
+        post = Posterior(AdjustedLikelihood(like, theta_hat, C, bounds[:, 0], bounds[:, 1]), priors)
+        adjustment = {"theta_hat": dict(zip(names, theta_hat.tolist())), "C": C.tolist(),
+                      "kappa": np.asarray(info["kappa"]).tolist(), "widened": info["adjusted"]}
+        notes.append("likelihood: curvature adjustment at the maximum (experimental); the score-to-curvature "
+                     "ratios of its informative directions: " + ", ".join(f"{k:.2f}" for k in info["kappa"]))
+
     # what defines the chain: the stars, the emulator and the configuration, except the step cap
     # (raising max_steps continues the same chain)
     key_cfg = {k: (dict(v, max_steps=None) if k == "sampler" else v) for k, v in cfg.items()}
@@ -268,7 +289,10 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     with threadpool_limits(limits=1, user_api="blas"):
         if chain.exists() and (state is None or state["key"] != data_key):
             added = _stars_added(state, terms.ids, target_key)
-            if added and s["refit"] == "reweight":
+            if added and s["refit"] == "reweight" and adjustment is not None:
+                notes.append("refit: with [likelihood] adjust the chain is not reweighted (the adjustment is "
+                             "recomputed for the new catalog); sampled anew")
+            elif added and s["refit"] == "reweight":
                 res, start, why = _reweight(chain, state, post, terms, s, like_options, priors)
                 if res is not None:
                     notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
@@ -308,6 +332,7 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                     "method": "reweighted" if res.weights is not None else "sampled",
                     "importance": res.importance},
         "stars": {"used": terms.n, "excluded": terms.excluded, "terms_reused": reused},
+        "likelihood": {"adjustment": adjustment},
         "timing_s": {"star_terms": round(t_terms, 2), "sampling": round(t_sample, 2),
                      "total": round(time.perf_counter() - t_start, 2)},
         "notes": notes,
