@@ -78,6 +78,14 @@ def test_ci_config_is_valid():
     assert cfg["seed"] == 1 and cfg["power"]["n_stars"] == [30]
 
 
+@pytest.mark.parametrize("path", sorted((ROOT / "training").glob("validate-*.toml")), ids=lambda p: p.name)
+def test_every_shipped_validation_config_is_valid(path):
+    """The configurations RESULTS.md quotes must still load (a renamed or removed key would
+    otherwise show only when someone reruns them)."""
+    cfg = load_validate_config(path)
+    assert cfg["fit"]["nwalkers"] >= 4
+
+
 # ----------------------------------------------------------------------------- end to end
 @pytest.fixture(scope="module")
 def held_out_run(tmp_path_factory):
