@@ -25,7 +25,7 @@ def curvature_adjustment(like, theta_hat, low, high, h1: float = 0.02, radius: f
     against ``H`` in ``H``'s informative subspace).
 
     ``like`` has ``per_star(theta)`` (W, n_star) and ``__call__(theta)`` (W,). The emulated
-    surface has small wiggles (~0.03 in log L on scales of ~0.01 of a range,
+    surface has small wiggles (0.014-0.029 rms in log L about a parabola over 0.1 of a range;
     benchmarks/RESULTS.md), so both are measured on wider scales: the per-star scores by
     central differences over ``h1`` of each range, ``H`` from a quadratic fitted by least
     squares to the total at ``n_fit`` points within ``radius`` (unit-cube coordinates, inside
@@ -132,3 +132,17 @@ class AdjustedLikelihood:
 
     def per_star(self, theta):
         return self.like.per_star(self._map(theta))
+
+
+def adjusted_posterior(post, like, bounds, rng):
+    """The posterior ``post`` (:class:`swerve.sampling.Posterior` over ``like``) with its
+    likelihood adjusted at its maximum (found with :func:`swerve.sampling.find_map` and ``rng``),
+    free parameters only. Returns ``(posterior, x_map, C, info)``; ``x_map`` is over the free
+    parameters (the adjusted posterior's maximum too: the adjustment keeps it)."""
+    from .sampling import Posterior, find_map
+
+    lo, hi = np.asarray(bounds, dtype=float).T
+    x_map = find_map(post, rng)
+    theta_hat = post.full(x_map)[0]
+    C, info = curvature_adjustment(like, theta_hat, lo, hi, free=post.free)
+    return Posterior(AdjustedLikelihood(like, theta_hat, C, lo, hi), post.priors), x_map, C, info

@@ -60,7 +60,6 @@ def fast_exp(x):
     return e if x > FAST_EXP_MIN else 0.0
 
 
-
 #: LLVM's function attribute for the widest vector registers its vectoriser may use
 _WIDE_VECTORS = '"prefer-vector-width"="512"'
 
@@ -71,12 +70,12 @@ def prefer_512(typingctx):
 
     On CPUs with AVX-512, LLVM uses 256-bit vectors unless told otherwise (512-bit instructions
     lowered the clock of early AVX-512 parts); numba can only change that for a whole process
-    (``NUMBA_CPU_FEATURES``), and that made the orbit engine slower here (12,600 -> 10,000
-    orbits/s/core) while the likelihood kernel ran 1.35x faster. This sets the attribute on the
-    one function instead (call it first thing in a ``prange`` body: the body is compiled as a
-    function of its own). No effect on CPUs without AVX-512; no change in the arithmetic, only
-    in how many lanes run at once. ``tests/test_likelihood.py`` checks the attribute reaches the
-    compiled code."""
+    (``NUMBA_CPU_FEATURES``), and that made the orbit engine slower here (14,300 -> 11,000
+    orbits/s on one core, benchmarks/RESULTS.md) while the likelihood kernel ran 1.3x faster.
+    This sets the attribute on the one function instead (call it first thing in a ``prange``
+    body: the body is compiled as a function of its own). No effect on CPUs without AVX-512; no change in the arithmetic, only
+    in how many lanes run at once. ``tests/test_likelihood.py`` checks that the compiled loop
+    then uses 512-bit registers."""
     sig = types.none()
 
     def codegen(context, builder, signature, args):

@@ -254,16 +254,13 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     s = cfg["sampler"]
     adjustment = None
     if cfg["likelihood"]["adjust"]:
-        from .adjustment import AdjustedLikelihood, curvature_adjustment
-        from .sampling import find_map
-
         from threadpoolctl import threadpool_limits
 
+        from .adjustment import adjusted_posterior
+
         with threadpool_limits(limits=1, user_api="blas"):
-            x_map = find_map(post, np.random.default_rng(s["seed"]))
-            theta_hat = post.full(x_map)[0]
-            C, info = curvature_adjustment(like, theta_hat, bounds[:, 0], bounds[:, 1], free=post.free)
-        post = Posterior(AdjustedLikelihood(like, theta_hat, C, bounds[:, 0], bounds[:, 1]), priors)
+            post, x_map, C, info = adjusted_posterior(post, like, bounds, np.random.default_rng(s["seed"]))
+        theta_hat = post.full(x_map)[0]
         adjustment = {"theta_hat": dict(zip(names, theta_hat.tolist())), "C": C.tolist(),
                       "kappa": np.asarray(info["kappa"]).tolist(), "widened": info["adjusted"]}
         notes.append("likelihood: curvature adjustment at the maximum (experimental); the score-to-curvature "

@@ -344,14 +344,9 @@ def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | 
     post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))
     x_map = None
     if fit_cfg.get("adjust"):
-        from .adjustment import AdjustedLikelihood, curvature_adjustment
-        from .sampling import find_map
+        from .adjustment import adjusted_posterior
 
-        x_map = find_map(post, rng)
-        lo, hi = np.asarray(emulator.bounds, dtype=float).T
-        full = post.full(x_map)[0]
-        C, _ = curvature_adjustment(like, full, lo, hi, free=post.free)
-        post = Posterior(AdjustedLikelihood(like, full, C, lo, hi), post.priors)
+        post, x_map, _, _ = adjusted_posterior(post, like, emulator.bounds, rng)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         res = sample_posterior(post, seed=int(rng.integers(2 ** 31)), nwalkers=fit_cfg["nwalkers"],

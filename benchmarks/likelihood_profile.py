@@ -1,0 +1,91 @@
+"""Where a likelihood call's time goes, and what taking the Fisher information at the walkers'
+mean would change (the groundwork of the inference issue's 5 ms target).
+
+    python benchmarks/likelihood_profile.py [--emulator emulators/default] [--fisher]
+
+The catalog is benchmarks/fit.py's (an 801-star mock at q_y = 1.1, q_z = 0.85, 64 distance
+samples per star). Prints the median and minimum of 40 calls of: the whole call for 64 walkers,
+the compiled kernels alone (``swerve.likelihood_kernels._run_kernels``) for 16, 32, 48 and 64
+walkers, and the emulator's mean. With ``--fisher``: a converged posterior (emcee, 32 walkers x
+2000 steps), 64 walkers drawn from it, and the catalog-level emulator term with the Fisher
+information per walker against the same at the walkers' mean.
+"""
+
+import argparse
+import time
+
+import numpy as np
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--emulator", default="emulators/default")
+    ap.add_argument("--fisher", action="store_true")
+    args = ap.parse_args()
+
+    from threadpoolctl import threadpool_limits
+
+    import swerve.likelihood_kernels as K
+    from swerve.catalog import catalog_from_table
+    from swerve.emulate import load
+    from swerve.fit import load_fit_config, star_terms
+    from swerve.frames import SolarParameters
+    from swerve.likelihood import Likelihood
+    from swerve.population import ErrorLaw, ErrorModel, make_mock
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import SummarySpec
+
+    emu = load(args.emulator)
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    setup = training_setup_from_dict(emu.metadata["config"])
+    lo, hi = np.asarray(emu.bounds).T
+    truth = dict(zip(emu.parameter_names, 0.5 * (lo + hi)), q_y=1.1, q_z=0.85)
+    errors = ErrorModel(parallax=ErrorLaw(0.02), distance_frac=ErrorLaw(0.10), pm=ErrorLaw(0.0, 0.01, 1.0),
+                        corr_pmra_pmdec=0.1, vlos=ErrorLaw(5.0))
+    table = make_mock(setup.galaxy_at(truth), setup.launch_at({n: truth[n] for n in setup.launch_names}),
+                      setup.selection, errors, 801, 11, flight_time_max=setup.flight_time_max, bank_size=4000)
+    cfg = load_fit_config(None, {"errors": {"samples": 64}})
+    terms, _ = star_terms(catalog_from_table(table, source="bench"), spec, cfg, SolarParameters.from_name("v4.0"))
+    threadpool_limits(limits=1, user_api="blas")
+    like = Likelihood(emu, terms, spec)
+    th = lo + (hi - lo) * np.random.default_rng(0).uniform(0.3, 0.7, size=(64, len(lo)))
+    like(th)
+    mu, sig, dens = like._cell_model(th)
+    tri = np.ascontiguousarray(np.stack([sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0],
+                                         sig[..., 2, 1], sig[..., 2, 2]], -1))
+    p = like._packed
+
+    def tm(f, reps=40):
+        f()
+        ts = []
+        for _ in range(reps):
+            t0 = time.perf_counter()
+            f()
+            ts.append(time.perf_counter() - t0)
+        return f"{1e3 * np.median(ts):.2f} / {1e3 * np.min(ts):.2f} ms"
+
+    print(f"{terms.n} stars, {len(p.cols[0])} (star, sample) terms inside the cells; median / minimum of 40 calls")
+    print(f"  call, 64 walkers: {tm(lambda: like(th))}")
+    for W in (16, 32, 48, 64):
+        print(f"  kernels alone, {W} walkers: {tm(lambda: K._run_kernels(p, mu[:W], tri[:W], True, dens))}")
+    print(f"  emulator mean, 64 walkers: {tm(lambda: emu.predict(th))}")
+    if not args.fisher:
+        return
+    from swerve.sampling import Posterior, resolve_priors, sample_posterior
+
+    post = Posterior(like, resolve_priors(list(emu.parameter_names), emu.bounds, None))
+    res = sample_posterior(post, seed=3, nwalkers=32, max_steps=2000, check_every=250, n_tau=25.0, tau_rtol=0.1)
+    w = res.samples[np.random.default_rng(1).choice(len(res.samples), 64, replace=False)]
+    out, grad, fisher = like._evaluate(w, True)
+    Lf = like._mean_cov_factor(w)
+    exact = like.emulator_correction(grad, fisher, Lf)
+    _, _, f0 = like._evaluate(w.mean(axis=0, keepdims=True), True)
+    d = like.emulator_correction(grad, np.broadcast_to(f0, fisher.shape).copy(), Lf) - exact
+    print(f"posterior walkers: total log L sd {(out.sum(axis=1) + exact).std():.2f}; catalog-level emulator term "
+          f"mean {exact.mean():.3f}, sd {exact.std():.3f}")
+    print(f"Fisher information at the walkers' mean instead of per walker: change mean {d.mean():+.4f}, "
+          f"sd {d.std():.4f}, max |change - mean| {np.max(np.abs(d - d.mean())):.4f}")
+
+
+if __name__ == "__main__":
+    main()
