@@ -7,6 +7,7 @@ from the stars, and where calibration misses sit.
     python benchmarks/diagnose_model.py fixed --param m_disk # repeated fits at fixed truths
     python benchmarks/diagnose_model.py along --param m_disk # emulator against precise simulations
     python benchmarks/diagnose_model.py sandwich             # information equality at the truth
+    python benchmarks/diagnose_model.py prior-cut            # what a face alone does to z (Monte Carlo)
 
 ``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
 power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
@@ -47,6 +48,10 @@ ratio ``Var(score) / E[-curvature]`` above 1 means posteriors too narrow by abou
 root (Chandler & Bate 2007, Biometrika 94, 167, for the adjustment of composite likelihoods;
 from memory). Two estimates of the variance: across catalogs, and per catalog as the sum of
 the stars' squared scores (the stars are independent).
+
+``prior-cut``: the reference for ``fixed`` near a face: a Gaussian likelihood of width ``--sigma``
+(fractions of the range) centred on a noisy draw about a truth ``--distance`` from the upper
+face, a flat prior cut at the faces; the mean and spread of z and the coverages (20,000 draws).
 
 ``edges``: from a `swerve validate` report, the extreme simulation-based-calibration ranks
 (0, 1, n-1 or n of n draws) of truths in the outer eighth of each parameter's range against the
@@ -349,6 +354,24 @@ def sandwich(args):
                   f"(± {S[:, k].std(ddof=1) / np.sqrt(len(S)):.2g})")
 
 
+def prior_cut(args):
+    from scipy.stats import truncnorm
+
+    rng = np.random.default_rng(0)
+    t = 1.0 - args.distance
+    for sig in args.sigma:
+        z, c68, c95 = [], [], []
+        for _ in range(20000):
+            m = rng.normal(t, sig)
+            q = truncnorm.ppf([0.025, 0.16, 0.5, 0.84, 0.975], (0 - m) / sig, (1 - m) / sig, loc=m, scale=sig)
+            z.append((q[2] - t) / (0.5 * (q[3] - q[1])))
+            c68.append(q[1] <= t <= q[3])
+            c95.append(q[0] <= t <= q[4])
+        z = np.array(z)
+        print(f"sigma {sig:.3g}, truth {args.distance:.3g} of the range below the face: z mean {z.mean():+.2f}, "
+              f"sd {z.std():.2f}; coverage 68% {np.mean(c68):.2f}, 95% {np.mean(c95):.2f}")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = ap.add_subparsers(dest="what", required=True)
@@ -373,10 +396,13 @@ def main():
             f.add_argument("--emulator-error", default="catalog", choices=("catalog", "per-star", "none"),
                            help="the fits' treatment of the emulator's error (the same seed refits the same catalogs)")
             f.add_argument("--adjust", action="store_true", help="the fits' experimental curvature adjustment")
+    pc = sub.add_parser("prior-cut")
+    pc.add_argument("--distance", type=float, default=0.08)
+    pc.add_argument("--sigma", type=lambda t: [float(x) for x in t.split(",")], default=[0.2, 0.235, 0.3])
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
-    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along, "sandwich": sandwich}[args.what](args)
+    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along, "sandwich": sandwich, "prior-cut": prior_cut}[args.what](args)
 
 
 if __name__ == "__main__":
