@@ -290,9 +290,11 @@ def test_fast_exp_matches_numpy():
 
 def test_wide_vector_attribute_reaches_the_compiled_code():
     """``prefer_512`` in a ``prange`` body shaped like the kernels' (a task loop around an inner
-    loop): on a CPU with AVX-512 the inner loop then runs in 512-bit registers and without it in
-    256-bit ones (LLVM's default there), so that a change in numba or llvmlite that drops the
-    attribute shows here rather than as a silent loss of speed; the results are the same."""
+    loop): on a CPU with AVX-512 the inner loop then runs in 512-bit registers, so that a change in
+    numba or llvmlite that drops the attribute shows here rather than as a silent loss of speed;
+    the results are the same. Without the attribute LLVM picks the width by the CPU's tuning:
+    256 bits on Intel's AVX-512 cores and AMD's Zen 4 (there the attribute is what gives 512),
+    512 on Zen 5 (``znver5``; there it changes nothing)."""
     import re
 
     import llvmlite.binding as llvm
@@ -323,7 +325,10 @@ def test_wide_vector_attribute_reaches_the_compiled_code():
         def zmm_fma(f):
             return len(re.findall(r"vfmadd\w+\s[^\n]*zmm", "".join(f.inspect_asm().values())))
 
-        assert zmm_fma(fw) > 0 and zmm_fma(fp) == 0
+        assert zmm_fma(fw) > 0
+        if llvm.get_host_cpu_name() in ("znver4", "skylake-avx512", "cascadelake", "icelake-server",
+                                        "sapphirerapids"):  # LLVM's tuning prefers 256 bits there
+            assert zmm_fma(fp) == 0
 
 
 def test_sampled_posterior_matches_analytic(rng):
