@@ -2,6 +2,7 @@
 mean would change (the groundwork of the inference issue's 5 ms target).
 
     python benchmarks/likelihood_profile.py [--emulator emulators/default] [--fisher]
+    python benchmarks/likelihood_profile.py --compare OTHER_CHECKOUT [--rounds 10]
 
 The catalog is benchmarks/fit.py's (an 801-star mock at q_y = 1.1, q_z = 0.85, 64 distance
 samples per star). Prints the median and minimum of 40 calls of: the whole call for 64 walkers,
@@ -9,6 +10,11 @@ the compiled kernels alone (``swerve.likelihood_kernels._run_kernels``) for 16, 
 walkers, and the emulator's mean. With ``--fisher``: a converged posterior (emcee, 32 walkers x
 2000 steps), 64 walkers drawn from it, and the catalog-level emulator term with the Fisher
 information per walker against the same at the walkers' mean.
+
+With ``--compare``, another checkout's ``src/swerve`` (e.g. a ``git worktree`` of an older commit)
+is imported beside this one under another name, and the two likelihoods, built from the same
+catalog, are timed in alternation in one process (each round: the minimum of 20 calls of each,
+for 16 and for 64 walkers); the per-star log-likelihoods of the two are compared too.
 """
 
 import argparse
@@ -21,6 +27,8 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--emulator", default="emulators/default")
     ap.add_argument("--fisher", action="store_true")
+    ap.add_argument("--compare", metavar="CHECKOUT", help="another checkout to time side by side")
+    ap.add_argument("--rounds", type=int, default=10)
     args = ap.parse_args()
 
     from threadpoolctl import threadpool_limits
@@ -55,6 +63,9 @@ def main():
                                          sig[..., 2, 1], sig[..., 2, 2]], -1))
     p = like._packed
 
+    if args.compare:
+        return compare(args, table, th)
+
     def tm(f, reps=40):
         f()
         ts = []
@@ -85,6 +96,65 @@ def main():
           f"mean {exact.mean():.3f}, sd {exact.std():.3f}")
     print(f"Fisher information at the walkers' mean instead of per walker: change mean {d.mean():+.4f}, "
           f"sd {d.std():.4f}, max |change - mean| {np.max(np.abs(d - d.mean())):.4f}")
+
+
+def _import_other(checkout):
+    """The other checkout's ``src/swerve`` as the package ``swerve_other`` (its imports are
+    relative), copied to a temporary folder so that its numba cache is its own."""
+    import importlib
+    import shutil
+    import sys
+    import tempfile
+    from pathlib import Path
+
+    tmp = Path(tempfile.mkdtemp(prefix="swerve-other-"))
+    shutil.copytree(Path(checkout) / "src" / "swerve", tmp / "swerve_other",
+                    ignore=shutil.ignore_patterns("__pycache__"))
+    sys.path.insert(0, str(tmp))
+    return importlib.import_module("swerve_other")
+
+
+def _likelihood_of(pkg, emulator_path, table):
+    import importlib
+
+    mod = lambda name: importlib.import_module(f"{pkg}.{name}")  # noqa: E731
+    emu = mod("emulate").load(emulator_path)
+    spec = mod("summaries").SummarySpec.from_dict(emu.metadata["summaries"])
+    cfg = mod("fit").load_fit_config(None, {"errors": {"samples": 64}})
+    cat = mod("catalog").catalog_from_table(table, source="bench")
+    terms, _ = mod("fit").star_terms(cat, spec, cfg, mod("frames").SolarParameters.from_name("v4.0"))
+    return mod("likelihood").Likelihood(emu, terms, spec)
+
+
+def compare(args, table, th):
+    _import_other(args.compare)
+    this = _likelihood_of("swerve", args.emulator, table)
+    other = _likelihood_of("swerve_other", args.emulator, table)
+    for like in (this, other):  # compile, fill the caches
+        like(th)
+        like(th[:16])
+    d = this.per_star(th) - other.per_star(th)
+    print(f"per-star log-likelihoods, this - other: max |difference| {np.max(np.abs(d)):.2e}; whole call "
+          f"(with the catalog-level term) max |difference| {np.max(np.abs(this(th) - other(th))):.2e}")
+
+    def best(f, reps=20):
+        ts = []
+        for _ in range(reps):
+            t0 = time.perf_counter()
+            f()
+            ts.append(time.perf_counter() - t0)
+        return 1e3 * min(ts)
+
+    rows = {(k, W): [] for k in ("this", "other") for W in (16, 64)}
+    for _ in range(args.rounds):
+        for W in (16, 64):
+            rows["this", W].append(best(lambda: this(th[:W])))
+            rows["other", W].append(best(lambda: other(th[:W])))
+    print(f"call time, ms: median (range) over {args.rounds} alternating rounds of the minimum of 20 calls")
+    for W in (16, 64):
+        a, b = np.array(rows["this", W]), np.array(rows["other", W])
+        print(f"  {W} walkers: this {np.median(a):.2f} ({a.min():.2f}-{a.max():.2f}), other {np.median(b):.2f} "
+              f"({b.min():.2f}-{b.max():.2f}); this / other {np.median(a / b):.3f}")
 
 
 if __name__ == "__main__":

@@ -178,6 +178,61 @@ def test_catalog_level_emulator_error_is_the_exact_joint_gaussian(rng):
     assert np.max(np.abs((star_ll - star_ll[10]) - (exact - exact[10]))) > 1.0
 
 
+class ToyWidthEmulator(ToyEmulator):
+    """:class:`ToyEmulator` whose cell dispersions also grow with ``a`` (``sd × e^{0.002 a}``: 20%
+    over the range, as a real emulator's might), so that each star's Fisher information in the
+    cell means depends on θ."""
+
+    def predict(self, theta, return_std=False, return_cov=False):
+        out = ToyEmulator.predict(self, theta, return_std, return_cov)
+        y = out[0] if isinstance(out, tuple) else out
+        y[:, 3:6] += 0.002 * np.atleast_2d(theta)[:, [0]]
+        return out
+
+
+def test_fisher_information_at_the_walkers_mean(rng):
+    """The "ensemble" shortcut of the catalog-level emulator term takes the Fisher information at
+    the walkers' mean: exact (the per-walker computation, to round-off) for a single θ and for
+    walkers that coincide, recomputed once the mean has moved by more than ``fisher_refresh`` of
+    the training range (a cache that never refreshes gives a different answer, so the check can
+    fail), and close to exact, not equal, for walkers spread like a posterior."""
+    cat, _ = _catalog(rng, n=40)
+    terms = prepare_stars(cat, draw_samples(cat, 4, rng), SPEC1)
+    emu = ToyWidthEmulator(1.5)
+    exact = Likelihood(emu, terms, SPEC1, emulator_variance="per-walker")
+    fast = Likelihood(emu, terms, SPEC1)
+    stale = Likelihood(emu, terms, SPEC1, fisher_refresh=2.0)
+    at = lambda a, w=16: np.full((w, 1), a)  # noqa: E731  walkers that coincide
+    for like in (fast, stale):
+        np.testing.assert_allclose(like(at(0.0)), exact(at(0.0)), rtol=0, atol=1e-9)
+        np.testing.assert_allclose(like(np.array([3.0])), exact(np.array([3.0])), rtol=0, atol=1e-9)
+    # 10 units = 10% of the range, past the 2% refresh; the stale cache still holds a = 0
+    np.testing.assert_allclose(fast(at(10.0)), exact(at(10.0)), rtol=0, atol=1e-9)
+    assert np.max(np.abs(stale(at(10.0)) - exact(at(10.0)))) > 1e-4
+    spread = 3.0 + rng.normal(0.0, 1.0, size=(21, 1))  # one block of 16 and 5 single walkers
+    d = fast(spread) - exact(spread)
+    assert 0 < np.max(np.abs(d)) < 0.05  # log L; a posterior moves with changes of order 1
+
+
+def test_kernels_without_the_fisher_sums(rng):
+    """Skipping the Fisher sums (the ensemble shortcut) leaves the log-likelihoods and the gradient
+    as they were, in the vectorised walker blocks and in the single-walker kernel alike."""
+    from swerve.likelihood_kernels import _run_kernels
+
+    cat, _ = _catalog(rng, n=30)
+    terms = prepare_stars(cat, draw_samples(cat, 4, rng), SPEC1)
+    like = Likelihood(ToyWidthEmulator(1.0), terms, SPEC1)
+    th = rng.uniform(-10.0, 10.0, size=(21, 1))
+    mu, sig, dens = like._cell_model(th)
+    tri = np.ascontiguousarray(np.stack([sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0],
+                                         sig[..., 2, 1], sig[..., 2, 2]], -1))
+    out1, grad1, fisher1 = _run_kernels(like._packed, mu, tri, True, dens, want_fisher=True)
+    out0, grad0, fisher0 = _run_kernels(like._packed, mu, tri, True, dens, want_fisher=False)
+    np.testing.assert_allclose(out0, out1, rtol=1e-13, atol=0)
+    np.testing.assert_allclose(grad0, grad1, rtol=1e-12, atol=1e-15 * np.abs(grad1).max())
+    assert np.all(fisher0 == 0.0) and np.all(fisher1[..., [0, 2, 5]] > 0)
+
+
 def test_per_star_sums_and_refit_reuses_terms(rng):
     cat, _ = _catalog(rng, n=30)
     terms = prepare_stars(cat, draw_samples(cat, 8, rng), SPEC1)

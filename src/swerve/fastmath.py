@@ -39,23 +39,23 @@ def fast_exp(x):
     """exp(x) for x ≤ 0, relative error < 1e-13 (``tests/test_likelihood.py``), in a form
     the compiler vectorises (``math.exp`` is a scalar library call; numba's wheels have no
     vector maths library). Cody–Waite reduction ``x = t ln 2 + r``, ``|r| ≤ ln 2 / 2``, the
-    Taylor series of ``exp(r)`` to degree 11 (truncation < 7e-15), and ``2^t`` assembled in
+    polynomial of degree 9 interpolating ``exp(r)`` at the 10 Chebyshev nodes of that interval
+    (near-minimax: 1.9e-14 relative, two multiply-adds fewer than the degree-11 Taylor series
+    of the same accuracy), and ``2^t`` assembled in
     the exponent bits. Returns 0 below :data:`FAST_EXP_MIN` (no subnormals)."""
     xc = max(x, FAST_EXP_MIN)
     t = math.floor(xc * _LOG2E + 0.5)
     r = (xc - t * _LN2_HI) - t * _LN2_LO
-    p = 2.505210838544172e-08  # 1/11!
-    p = p * r + 2.755731922398589e-07
-    p = p * r + 2.7557319223985893e-06
-    p = p * r + 2.48015873015873e-05
-    p = p * r + 0.0001984126984126984
-    p = p * r + 0.001388888888888889
-    p = p * r + 0.008333333333333333
-    p = p * r + 0.041666666666666664
-    p = p * r + 0.16666666666666666
-    p = p * r + 0.5
-    p = p * r + 1.0
-    p = p * r + 1.0
+    p = 2.7632640675430236e-06  # degree 9, interpolating exp at the Chebyshev nodes of |r| <= ln 2 / 2
+    p = p * r + 2.4884459751751116e-05
+    p = p * r + 0.0001984119064754424
+    p = p * r + 0.0013888801749656543
+    p = p * r + 0.008333333367311603
+    p = p * r + 0.04166666704055191
+    p = p * r + 0.16666666666615648
+    p = p * r + 0.4999999999943859
+    p = p * r + 1.0000000000000013
+    p = p * r + 1.0000000000000135
     e = p * _bits_to_float((np.int64(t) + 1023) << 52)
     return e if x > FAST_EXP_MIN else 0.0
 

@@ -96,7 +96,7 @@ def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, 
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
                     vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mu, sig, dens, out,
-                    want_grad, grad, fisher):
+                    want_grad, want_fisher, grad, fisher):
     """out[w, i] = log sum_k w_ik N(m_ik; mu[w, c], sig[w, c] + C_ik), summed over each star's
     (star, cell) segments; sig holds the 6 lower-triangle entries (00, 10, 11, 20, 21, 22).
     One walker at a time, vectorised over a segment's samples, parallel over (walker, chunk of
@@ -165,12 +165,13 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 g0 += t[1]
                 g1 += t[2]
                 g2 += t[3]
-                h00 += t[4]
-                h10 += t[5]
-                h11 += t[6]
-                h20 += t[7]
-                h21 += t[8]
-                h22 += t[9]
+                if want_fisher:
+                    h00 += t[4]
+                    h10 += t[5]
+                    h11 += t[6]
+                    h20 += t[7]
+                    h21 += t[8]
+                    h22 += t[9]
             acc[wi, seg_star[s]] += tot  # a star's segments all lie in one chunk: no race
             if want_grad:
                 gs[wi, s, 0] = g0
@@ -183,11 +184,11 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 gs[wi, s, 7] = h21
                 gs[wi, s, 8] = h22
     for wi in nb.prange(W):
-        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, lognorm, out, grad, fisher)
+        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher)
 
 
 @nb.njit(fastmath=True, cache=True)
-def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, lognorm, out, grad, fisher):
+def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher):
     """One walker's per-star logs and its responsibility-weighted gradient and Fisher sums,
     from the per-star sums ``acc`` (n_star,) and per-segment sums ``gs`` (n_seg, 9)."""
     for i in range(acc.shape[0]):
@@ -202,8 +203,9 @@ def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, lognorm, out, grad, fish
                 c = seg_cell[s]
                 for m in range(3):
                     grad[wi, c, m] += gs[s, m] / a
-                for m in range(6):
-                    fisher[wi, c, m] += gs[s, 3 + m] / a
+                if want_fisher:
+                    for m in range(6):
+                        fisher[wi, c, m] += gs[s, 3 + m] / a
 
 
 #: walkers evaluated together by :func:`_loglike_blocks` (a compile-time constant: the inner
@@ -216,7 +218,7 @@ _PAD_FROM = 5
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
                     vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mub, sigb, densb, out,
-                    want_grad, grad, fisher):
+                    want_grad, want_fisher, grad, fisher):
     """:func:`_loglike_kernel` for blocks of :data:`_WALKER_BLOCK` walkers, vectorised over the
     walkers of a block (every sample meets 16 walkers in the vector registers; a segment holds
     only ~40 samples, too few to fill them), parallel over (block, chunk of stars) pairs.
@@ -291,9 +293,12 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                                        s21[k], s22[k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj * pr[k], dl, dv,
                                        k1, k2)
                         tot[k] += t[0]
-                        for m in range(9):
+                        for m in range(3):
                             G[m, k] += t[1 + m]
-                else:
+                        if want_fisher:  # loop-invariant
+                            for m in range(3, 9):
+                                G[m, k] += t[1 + m]
+                elif want_fisher:
                     for k in range(B):
                         t = _term(sigb[bi, c, 0, k], sigb[bi, c, 1, k], sigb[bi, c, 2, k], sigb[bi, c, 3, k],
                                   sigb[bi, c, 4, k], sigb[bi, c, 5, k], mub[bi, c, 0, k], mub[bi, c, 1, k],
@@ -301,17 +306,26 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                         tot[k] += t[0]
                         for m in range(9):
                             G[m, k] += t[1 + m]
+                else:  # the same without the Fisher sums (a loop of its own: fewer live registers)
+                    for k in range(B):
+                        t = _term(sigb[bi, c, 0, k], sigb[bi, c, 1, k], sigb[bi, c, 2, k], sigb[bi, c, 3, k],
+                                  sigb[bi, c, 4, k], sigb[bi, c, 5, k], mub[bi, c, 0, k], mub[bi, c, 1, k],
+                                  mub[bi, c, 2, k], x00, x10, x11, x20, x21, x22, y0, y1, y2, wj)
+                        tot[k] += t[0]
+                        for m in range(3):
+                            G[m, k] += t[1 + m]
             i = seg_star[s]
             for k in range(B):
                 acc[bi, i, k] += tot[k]  # a star's segments all lie in one chunk: no race
             if want_grad:
                 gs[bi, s] = G
     for bi in nb.prange(nbk):
-        _finish_block(bi * B, acc[bi], gs[bi], seg_cell, seg_star, want_grad, lognorm, out, grad, fisher)
+        _finish_block(bi * B, acc[bi], gs[bi], seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad,
+                      fisher)
 
 
 @nb.njit(fastmath=True, cache=True)
-def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, lognorm, out, grad, fisher):
+def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher):
     """:func:`_finish` for the :data:`_WALKER_BLOCK` walkers from ``w0`` at once, reading the
     block's sums ``acc`` (n_star, B) and ``gs`` (n_seg, 9, B) in their memory order."""
     B = acc.shape[1]
@@ -328,18 +342,19 @@ def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, lognorm, out, grad
             for k in range(B):
                 a = acc[seg_star[s], k]
                 ia[k] = 1.0 / a if a > 1e-300 else 0.0
-            for m in range(9):
+            for m in range(9 if want_fisher else 3):
                 for k in range(B):
                     gb[c, m, k] += gs[s, m, k] * ia[k]
         for k in range(B):
             for c in range(nc):
                 for m in range(3):
                     grad[w0 + k, c, m] += gb[c, m, k]
-                for m in range(6):
-                    fisher[w0 + k, c, m] += gb[c, 3 + m, k]
+                if want_fisher:
+                    for m in range(6):
+                        fisher[w0 + k, c, m] += gb[c, 3 + m, k]
 
 
-def _run_kernels(p, mu, tri, want_grad: bool, dens=None):
+def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | None = None):
     """Per-star log-likelihoods (W, n_star), gradient (W, n_cells, 3) and Fisher information
     (W, n_cells, 6) of the packed star terms ``p`` (``swerve.likelihood._Packed``) for the
     walkers' cell Gaussians ``mu`` (W, n_cells, 3) and ``tri``
@@ -358,7 +373,8 @@ def _run_kernels(p, mu, tri, want_grad: bool, dens=None):
         mu = np.concatenate([mu, np.repeat(mu[-1:], pad, axis=0)])
         tri = np.concatenate([tri, np.repeat(tri[-1:], pad, axis=0)])
         dens = np.concatenate([dens, np.repeat(dens[-1:], pad, axis=0)])
-        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens))
+        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens, want_fisher))
+    want_fisher = want_grad if want_fisher is None else bool(want_fisher and want_grad)
     lognorm = (1.5 - 0.5 * p.cond) * _LOG_2PI
     vr = (p.vstart, p.vcount, p.vbeta, p.vgamma, p.vgamma2, p.kap1, p.kap2, float(p.cond), lognorm)
     out = np.empty((W, p.n_star))
@@ -371,11 +387,14 @@ def _run_kernels(p, mu, tri, want_grad: bool, dens=None):
         sigb = np.ascontiguousarray(tri[:n].reshape(n // B, B, nc, 6).transpose(0, 2, 3, 1))
         densb = np.ascontiguousarray(dens[:n].reshape(n // B, B, nc, -1).transpose(0, 2, 3, 1))
         _loglike_blocks(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mub, sigb, densb,
-                        out[:n], want_grad, grad[:n], fisher[:n])
+                        out[:n], want_grad, want_fisher, grad[:n], fisher[:n])
     if n < W:
         _loglike_kernel(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mu[n:], tri[n:],
-                        np.ascontiguousarray(dens[n:]), out[n:], want_grad, grad[n:], fisher[n:])
-    for wi, i in np.argwhere(np.isnan(out)):  # underflow: a star far in the tail of this walker's model
+                        np.ascontiguousarray(dens[n:]), out[n:], want_grad, want_fisher, grad[n:],
+                        fisher[n:])
+    # underflow: a star far in the tail of this walker's model (a NaN makes the sum NaN: one cheap
+    # pass over the array instead of a mask and a search on every call)
+    for wi, i in (np.argwhere(np.isnan(out)) if np.isnan(out.sum()) else ()):
         out[wi, i] = _star_logspace(p.seg_cell, p.seg_start, p.seg_star, i, *p.cols, *vr, mu[wi], tri[wi],
                                     np.ascontiguousarray(dens[wi]))
     return out, grad, fisher
