@@ -324,6 +324,23 @@ def test_batched_cholesky_term_matches_numpy(rng):
     assert np.isnan(out[3]) and np.all(np.isfinite(np.delete(out, 3)))
 
 
+def test_compiled_cell_gaussians_match_the_summaries_definition(rng):
+    """The likelihood's one-pass conversion of emulated statistics to cell means and covariance
+    triangles equals ``swerve.summaries.stats_to_gaussian`` (the definition the emulator was
+    trained on) plus the velocity floor."""
+    from swerve.likelihood_kernels import _cell_gaussians_tri
+    from swerve.summaries import stats_to_gaussian
+
+    nc = 7
+    y = rng.normal(size=(5, 9 * nc)) * np.tile([300.0, 5.0, 3.0, 1.0, 1.0, 1.0, 20.0, 10.0, 5.0], nc)
+    mu, tri = _cell_gaussians_tri(y, nc, 1.5**2)
+    m_ref, s_ref = stats_to_gaussian(y, nc)
+    s_ref = s_ref + 1.5**2 * np.eye(3)
+    np.testing.assert_allclose(mu, m_ref, rtol=0, atol=0)
+    rows, cols = [0, 1, 1, 2, 2, 2], [0, 0, 1, 0, 1, 2]
+    np.testing.assert_allclose(tri, s_ref[..., rows, cols], rtol=1e-13, atol=1e-12)
+
+
 def test_fast_exp_matches_numpy():
     """The kernel's vectorisable exp against numpy's, over the whole range the kernel uses."""
     import numba as nb

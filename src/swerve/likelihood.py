@@ -60,7 +60,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .likelihood_kernels import _half_quad_minus_logdet, _run_kernels
+from .likelihood_kernels import _cell_gaussians_tri, _half_quad_minus_logdet, _run_kernels
 from .summaries import N_STAT, SummarySpec, stats_to_gaussian, stats_to_vr_density
 
 
@@ -723,6 +723,15 @@ class Likelihood:
         return np.ascontiguousarray(mu), np.ascontiguousarray(sig), dens
 
     def _evaluate(self, theta, want_grad: bool, want_fisher: bool = True):
+        if self.emulator_error != "per-star" and not self.spec.n_vbins:  # the hot path: one compiled pass
+            theta = np.atleast_2d(np.asarray(theta, dtype=float))
+            y = np.asarray(self.emulator.predict(theta), dtype=float)
+            self._last_prediction = (theta.copy(), y)
+            if y.shape[-1] != self.spec.n_outputs:
+                raise ValueError(
+                    f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}")
+            mu, tri = _cell_gaussians_tri(np.ascontiguousarray(y), self.spec.n_cells, self.velocity_floor**2)
+            return _run_kernels(self._packed, mu, tri, want_grad, None, want_fisher)
         mu, sig, dens = self._cell_model(theta)
         tri = np.ascontiguousarray(np.stack(
             [sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0], sig[..., 2, 1], sig[..., 2, 2]], -1))

@@ -354,6 +354,37 @@ def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, want_fisher, logno
                         fisher[w0 + k, c, m] += gb[c, 3 + m, k]
 
 
+@nb.njit(cache=True)
+def _cell_gaussians_tri(y, n_cells, floor2):
+    """Cell means ``mu`` (W, n_cells, 3) and the lower triangles ``tri`` (W, n_cells, 6: 00, 10,
+    11, 20, 21, 22) of the cell covariances ``L Lᵀ + floor2 I`` from emulated summary vectors
+    ``y`` (W, >= 9 n_cells), in one pass: what ``swerve.summaries.stats_to_gaussian`` and the
+    velocity floor give, without numpy's batched 3 × 3 products (the statistics' order is
+    ``swerve.summaries.STAT_NAMES``)."""
+    W = y.shape[0]
+    mu = np.empty((W, n_cells, 3))
+    tri = np.empty((W, n_cells, 6))
+    for w in range(W):
+        for c in range(n_cells):
+            j = 9 * c
+            mu[w, c, 0] = y[w, j]
+            mu[w, c, 1] = y[w, j + 1]
+            mu[w, c, 2] = y[w, j + 2]
+            l00 = math.exp(y[w, j + 3])
+            l11 = math.exp(y[w, j + 4])
+            l22 = math.exp(y[w, j + 5])
+            l10 = y[w, j + 6]
+            l20 = y[w, j + 7]
+            l21 = y[w, j + 8]
+            tri[w, c, 0] = l00 * l00 + floor2
+            tri[w, c, 1] = l10 * l00
+            tri[w, c, 2] = l10 * l10 + l11 * l11 + floor2
+            tri[w, c, 3] = l20 * l00
+            tri[w, c, 4] = l20 * l10 + l21 * l11
+            tri[w, c, 5] = l20 * l20 + l21 * l21 + l22 * l22 + floor2
+    return mu, tri
+
+
 def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | None = None):
     """Per-star log-likelihoods (W, n_star), gradient (W, n_cells, 3) and Fisher information
     (W, n_cells, 6) of the packed star terms ``p`` (``swerve.likelihood._Packed``) for the
