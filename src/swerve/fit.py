@@ -77,8 +77,10 @@ FIT_SCHEMA = Schema("fit", (
     )),
     Section("likelihood", (
         Key("adjust", "bool", False,
-            doc="experimental: widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment; "
-                "calibrates the launch slope, benchmarks/RESULTS.md); refits then sample anew"),
+            doc="widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment): the per-cell "
+                "model overstates the information on the launch slope, and with the adjustment every parameter's "
+                "intervals cover at their nominal rates; it also widens posteriors that touch a bound of the domain, "
+                "which moves their medians inward (benchmarks/RESULTS.md)"),
     )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
@@ -263,8 +265,8 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
         theta_hat = post.full(x_map)[0]
         adjustment = {"theta_hat": dict(zip(names, theta_hat.tolist())), "C": C.tolist(),
                       "kappa": np.asarray(info["kappa"]).tolist(), "widened": info["adjusted"]}
-        notes.append("likelihood: curvature adjustment at the maximum (experimental); the score-to-curvature "
-                     "ratios of its informative directions: " + ", ".join(f"{k:.2f}" for k in info["kappa"]))
+        notes.append("likelihood: curvature adjustment at the maximum; the score-to-curvature ratios of its "
+                     "informative directions: " + ", ".join(f"{k:.2f}" for k in info["kappa"]))
 
     # what defines the chain: the stars, the emulator and the configuration, except the step cap
     # (raising max_steps continues the same chain)
@@ -286,11 +288,14 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     with threadpool_limits(limits=1, user_api="blas"):
         if chain.exists() and (state is None or state["key"] != data_key):
             added = _stars_added(state, terms.ids, target_key)
-            if added and s["refit"] == "reweight" and adjustment is not None:
-                notes.append("refit: with [likelihood] adjust the chain is not reweighted (the adjustment is "
-                             "recomputed for the new catalog); sampled anew")
+            if added and s["refit"] == "reweight" and adjustment is not None and not state.get("adjustment"):
+                notes.append("refit: the previous chain records no curvature adjustment, so it is not reweighted "
+                             "by the adjusted likelihood; sampled anew")
             elif added and s["refit"] == "reweight":
-                res, start, why = _reweight(chain, state, post, terms, s, like_options, priors)
+                # with the adjustment, the ratio of the new catalog's adjusted posterior (adjusted at
+                # its own maximum, just computed) to the chain's (the adjustment it recorded)
+                res, start, why = _reweight(chain, state, post, terms, s, like_options, priors,
+                                            bounds if adjustment is not None else None)
                 if res is not None:
                     notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
                                  f"by the {len(added)} added star(s) ({why}); no new sampling")
@@ -305,9 +310,10 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                                  "was started from the previous one's final walkers")
                 chain.unlink()
         if res is None:
-            _write_state(state_file, data_key, target_key, terms.ids, converged=False)
+            adj_state = None if adjustment is None else {"theta_hat": theta_hat.tolist(), "C": C.tolist()}
+            _write_state(state_file, data_key, target_key, terms.ids, converged=False, adjustment=adj_state)
             res = _sample(sample_posterior, post, s, chain, progress, previous_start)
-            _write_state(state_file, data_key, target_key, terms.ids, converged=res.converged)
+            _write_state(state_file, data_key, target_key, terms.ids, converged=res.converged, adjustment=adj_state)
     t_sample = time.perf_counter() - t1
 
     summ = credible_summary(res.samples, res.names, res.weights)
@@ -370,9 +376,12 @@ def _read_state(path):
     return st if isinstance(st, dict) and "key" in st else None
 
 
-def _write_state(path, key, target_key, ids, converged):
-    _write_json(path, {"key": key, "target": target_key, "converged": bool(converged),
-                       "stars": sorted(map(str, ids))})
+def _write_state(path, key, target_key, ids, converged, adjustment=None):
+    """``adjustment``: the curvature adjustment the chain samples (``theta_hat``, ``C``), or None."""
+    st = {"key": key, "target": target_key, "converged": bool(converged), "stars": sorted(map(str, ids))}
+    if adjustment is not None:
+        st["adjustment"] = adjustment
+    _write_json(path, st)
 
 
 def _stars_added(state, ids, target_key):
@@ -384,12 +393,16 @@ def _stars_added(state, ids, target_key):
     return sorted(new - old) if old and old < new else []
 
 
-def _reweight(chain, state, post, terms, s, like_options, priors):
+def _reweight(chain, state, post, terms, s, like_options, priors, bounds=None):
     """Importance-reweight a converged chain of a subset of the stars by the added stars.
 
     The ratio of the new to the old posterior is evaluated at every retained sample of the old
     chain (burn-in discarded, thinned as a fit thins it), both posteriors in the same batches so
-    the emulator-variance cache is the same for both. Returns ``(result, None, diagnostics)``
+    the emulator-variance cache is the same for both. With ``bounds`` (the emulator's), the
+    chain sampled a curvature-adjusted likelihood: the old posterior is rebuilt with the
+    adjustment the state records, and ``post`` is the new catalog's adjusted one (its own
+    maximum and matrix), so the weights also carry the change of the adjustment. Returns
+    ``(result, None, diagnostics)``
     when the weights are reliable (:class:`swerve.sampling.ImportanceWeights`), else ``(None,
     start, diagnostics)`` with ``start`` walkers drawn from the reweighted samples."""
     import emcee
@@ -404,7 +417,13 @@ def _reweight(chain, state, post, terms, s, like_options, priors):
     burn, thin = burn_and_thin(tau, n_steps)  # as the fit that made the chain
     x = b.get_chain(discard=burn, thin=thin, flat=True)
     old = np.flatnonzero(np.isin(terms.ids.astype(str), list(state["stars"])))
-    post_old = Posterior(Likelihood(stars=terms.subset(old), **like_options), priors)
+    like_old = Likelihood(stars=terms.subset(old), **like_options)
+    if bounds is not None:
+        from .adjustment import AdjustedLikelihood
+
+        a = state["adjustment"]
+        like_old = AdjustedLikelihood(like_old, a["theta_hat"], a["C"], *np.asarray(bounds, dtype=float).T)
+    post_old = Posterior(like_old, priors)
     lp_new, lp_old = np.empty(len(x)), np.empty(len(x))
     for i in range(0, len(x), 64):
         lp_new[i:i + 64] = post(x[i:i + 64])
