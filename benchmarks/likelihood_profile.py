@@ -2,7 +2,7 @@
 mean would change (the groundwork of the inference issue's 5 ms target).
 
     python benchmarks/likelihood_profile.py [--emulator emulators/default] [--fisher]
-    python benchmarks/likelihood_profile.py --compare OTHER_CHECKOUT [--rounds 10]
+    python benchmarks/likelihood_profile.py --compare OTHER_CHECKOUT [--rounds 10] [--other-emulator PATH]
 
 The catalog is benchmarks/fit.py's (an 801-star mock at q_y = 1.1, q_z = 0.85, 64 distance
 samples per star). Prints the median and minimum of 40 calls of: the whole call for 64 walkers,
@@ -14,7 +14,8 @@ information per walker against the same at the walkers' mean.
 With ``--compare``, another checkout's ``src/swerve`` (e.g. a ``git worktree`` of an older commit)
 is imported beside this one under another name, and the two likelihoods, built from the same
 catalog, are timed in alternation in one process (each round: the minimum of 20 calls of each,
-for 16 and for 64 walkers); the per-star log-likelihoods of the two are compared too.
+for 16 and for 64 walkers); the per-star log-likelihoods of the two are compared too (when both
+use the same emulator; ``--other-emulator`` gives the other checkout its own).
 """
 
 import argparse
@@ -29,6 +30,7 @@ def main():
     ap.add_argument("--fisher", action="store_true")
     ap.add_argument("--compare", metavar="CHECKOUT", help="another checkout to time side by side")
     ap.add_argument("--rounds", type=int, default=10)
+    ap.add_argument("--other-emulator", help="with --compare: the other checkout's emulator (default: --emulator)")
     args = ap.parse_args()
 
     from threadpoolctl import threadpool_limits
@@ -129,13 +131,17 @@ def _likelihood_of(pkg, emulator_path, table):
 def compare(args, table, th):
     _import_other(args.compare)
     this = _likelihood_of("swerve", args.emulator, table)
-    other = _likelihood_of("swerve_other", args.emulator, table)
+    other_emulator = args.other_emulator or args.emulator
+    other = _likelihood_of("swerve_other", other_emulator, table)
     for like in (this, other):  # compile, fill the caches
         like(th)
         like(th[:16])
-    d = this.per_star(th) - other.per_star(th)
-    print(f"per-star log-likelihoods, this - other: max |difference| {np.max(np.abs(d)):.2e}; whole call "
-          f"(with the catalog-level term) max |difference| {np.max(np.abs(this(th) - other(th))):.2e}")
+    if other_emulator != args.emulator:
+        print(f"this: {args.emulator} ({this.spec.n_cells} cells); other: {other_emulator} ({other.spec.n_cells} cells)")
+    else:
+        d = this.per_star(th) - other.per_star(th)
+        print(f"per-star log-likelihoods, this - other: max |difference| {np.max(np.abs(d)):.2e}; whole call "
+              f"(with the catalog-level term) max |difference| {np.max(np.abs(this(th) - other(th))):.2e}")
 
     def best(f, reps=20):
         ts = []

@@ -78,8 +78,8 @@ FIT_SCHEMA = Schema("fit", (
     Section("likelihood", (
         Key("adjust", "bool", False,
             doc="widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment): the per-cell "
-                "model overstates the information on the launch slope, and with the adjustment every parameter's "
-                "intervals cover at their nominal rates; it also widens posteriors that touch a bound of the domain, "
+                "model overstates the information on the launch slope and the disk mass, and the adjustment "
+                "calibrates the slope's intervals; it also widens posteriors that touch a bound of the domain, "
                 "which moves their medians inward (benchmarks/RESULTS.md)"),
     )),
     Section("frame", (
