@@ -229,14 +229,14 @@ def test_ensemble_emulator_variance_is_close_to_per_walker(smoke_run, mock_catal
 
 
 def test_fit_with_the_curvature_adjustment(tmp_path, smoke_run, mock_catalog):
-    """``[likelihood] adjust``: the adjustment is recorded (its matrix, the score-to-curvature
+    """``[likelihood] adjust`` (on by default): the adjustment is recorded (its matrix, the score-to-curvature
     ratios) and noted; intervals are no narrower than without it on the same catalog and seed
     beyond Monte Carlo noise (the adjustment only widens; tests/test_adjustment.py checks its
     size against the analytic case); a refit after a star is added reweights the chain by the
     ratio of the two adjusted posteriors and agrees with the adjusted fit sampled on all stars."""
     _, emu = smoke_run
-    plain = run_fit(mock_catalog, emu, tmp_path / "plain", load_fit_config(None, REWEIGHT))
-    cfg = load_fit_config(None, {**REWEIGHT, "likelihood": {"adjust": True}})
+    plain = run_fit(mock_catalog, emu, tmp_path / "plain", load_fit_config(None, {**REWEIGHT, "likelihood": {"adjust": False}}))
+    cfg = load_fit_config(None, REWEIGHT)  # the adjustment is the default
     adj = run_fit(mock_catalog, emu, tmp_path / "adj", cfg)
     rec = adj.summary["likelihood"]["adjustment"]
     assert np.shape(rec["C"]) == (3, 3) and len(rec["kappa"]) >= 1

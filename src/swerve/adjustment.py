@@ -1,5 +1,5 @@
-"""Curvature adjustment of the likelihood (an option: ``swerve fit``'s ``[likelihood] adjust``, a
-validation configuration's ``[fit] adjust``).
+"""Curvature adjustment of the likelihood (on by default since 2026-12-03: ``swerve fit``'s
+``[likelihood] adjust``, a validation configuration's ``[fit] adjust``).
 
 The per-cell Gaussian is a quasi-likelihood: its curvature overstates the information in some
 directions (``benchmarks/diagnose_model.py sandwich``: the score of the disk mass and the launch

@@ -76,11 +76,10 @@ FIT_SCHEMA = Schema("fit", (
                 "new stars (seconds; falls back to sampling when the weights are unreliable) or always sample anew"),
     )),
     Section("likelihood", (
-        Key("adjust", "bool", False,
+        Key("adjust", "bool", True,
             doc="widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment): the per-cell "
                 "model overstates the information on the launch slope and the disk mass, and the adjustment "
-                "calibrates the slope's intervals; it also widens posteriors that touch a bound of the domain, "
-                "which moves their medians inward (benchmarks/RESULTS.md)"),
+                "calibrates the slope's intervals (benchmarks/RESULTS.md); false: the plain likelihood"),
     )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),

@@ -69,8 +69,8 @@ VALIDATE_SCHEMA = Schema("validate", (
                                                           "(swerve fit's [emulator] velocity_floor)"),
         Key("emulator_error", "str", "catalog", choices=("catalog", "per-star", "none"),
             doc="the emulator's error of the cell means: marginalised per catalog, folded per star, or ignored"),
-        Key("adjust", "bool", False, doc="widen the likelihood by its curvature adjustment at the maximum "
-                                          "(swerve.adjustment; swerve fit's [likelihood] adjust)"),
+        Key("adjust", "bool", True, doc="widen the likelihood by its curvature adjustment at the maximum "
+                                         "(swerve.adjustment; swerve fit's [likelihood] adjust)"),
     ), doc="the in-memory fits"),
     Section("bank", (
         Key("n_orbits", "int", 0, min=0, doc="orbits per validation bank (0: the training configuration's)"),
