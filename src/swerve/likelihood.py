@@ -600,14 +600,13 @@ class Likelihood:
             self._hist_idx = spec.n_gauss + np.arange(nc * nb)
 
     # ----------------------------------------------------------------- emulator's uncertainty
-    def _cached(self, theta, what, compute, refresh=None):
+    def _cached(self, theta, what, compute):
         """``compute(centre)`` at the walkers' mean, reused while the mean stays within
-        ``refresh`` (default ``variance_refresh``) of the training range (the "ensemble"
-        evaluation)."""
+        ``variance_refresh`` of the training range (the "ensemble" evaluation)."""
         centre = theta.mean(axis=0, keepdims=True)
         u = (centre[0] - self._lo) / self._span
         hit = self._cache.get(what)
-        if hit is None or np.max(np.abs(u - hit[0])) > (self.variance_refresh if refresh is None else refresh):
+        if hit is None or np.max(np.abs(u - hit[0])) > self.variance_refresh:
             hit = self._cache[what] = (u, compute(centre))
         return hit[1]
 
@@ -637,20 +636,27 @@ class Likelihood:
         """``½ gᵀ (P + E⁻¹)⁻¹ g − ½ log det(I + E P)`` per walker (see ``emulator_error``), with
         ``E = Lf Lfᵀ``, ``g`` the gradient (W, n_cells, 3) and ``P`` the Fisher information
         (W, n_cells, 6) of the catalog's log-likelihood in the cell means."""
-        W, nc, _ = grad.shape
+        W = grad.shape[0]
+        B = self._catalog_matrix(fisher, Lf)
+        g = grad.reshape(W, -1)
+        cvec = np.einsum("wji,wj->wi", Lf, g) if Lf.shape[0] == W else g @ Lf[0]
+        return _half_quad_minus_logdet(np.ascontiguousarray(B), np.ascontiguousarray(cvec))
+
+    @staticmethod
+    def _catalog_matrix(fisher, Lf) -> np.ndarray:
+        """``B = I + Lfᵀ P Lf`` per walker (W, 3 n_cells, 3 n_cells), ``P`` block-diagonal from
+        the Fisher information's lower triangles ``fisher`` (W, n_cells, 6); ``Lf`` (W or 1, ...)."""
+        W, nc, _ = fisher.shape
         n = 3 * nc
         P = np.zeros((W, nc, 3, 3))
         for k, (a, b) in enumerate(((0, 0), (1, 0), (1, 1), (2, 0), (2, 1), (2, 2))):
             P[:, :, a, b] = fisher[:, :, k]
             P[:, :, b, a] = fisher[:, :, k]
-        g = grad.reshape(W, n)
         # Lfᵀ P Lf with P block-diagonal: the 3 rows of Lf of each cell times its 3 x 3 block
-        Lr = Lf.reshape(Lf.shape[0], nc, 3, n)
-        PL = (P @ Lr).reshape(W, n, n)  # rows (cell, component)
+        PL = (P @ Lf.reshape(Lf.shape[0], nc, 3, n)).reshape(W, n, n)  # rows (cell, component)
         B = np.swapaxes(Lf, -1, -2) @ PL
         B[:, np.arange(n), np.arange(n)] += 1.0
-        cvec = np.einsum("wji,wj->wi", Lf, g) if Lf.shape[0] == W else g @ Lf[0]
-        return _half_quad_minus_logdet(np.ascontiguousarray(B), np.ascontiguousarray(cvec))
+        return B
 
     def _catalog_factor(self, theta):
         """``(Q, log det B)`` with ``B = I + Lfᵀ P Lf`` and ``Q = Lf C⁻ᵀ`` (``C`` the Cholesky
@@ -661,19 +667,11 @@ class Likelihood:
         from scipy.linalg import solve_triangular
 
         Lf_cached = self._mean_cov_factor(theta)  # the cache's own array: its identity says E is unchanged
-        Lf = Lf_cached[0]
 
         def factor(centre):
             _, _, f0 = self._evaluate(centre, True)
-            nc = self.spec.n_cells
-            n = 3 * nc
-            P = np.zeros((nc, 3, 3))
-            for k, (a, b) in enumerate(((0, 0), (1, 0), (1, 1), (2, 0), (2, 1), (2, 2))):
-                P[:, a, b] = P[:, b, a] = f0[0, :, k]
-            B = np.swapaxes(Lf, 0, 1) @ (P @ Lf.reshape(nc, 3, n)).reshape(n, n)
-            B[np.diag_indices(n)] += 1.0
-            C = np.linalg.cholesky(B)
-            return solve_triangular(C, Lf.T, lower=True).T, 2.0 * np.sum(np.log(np.diag(C)))
+            C = np.linalg.cholesky(self._catalog_matrix(f0, Lf_cached)[0])
+            return solve_triangular(C, Lf_cached[0].T, lower=True).T, 2.0 * np.sum(np.log(np.diag(C)))
 
         centre = theta.mean(axis=0, keepdims=True)
         u = (centre[0] - self._lo) / self._span
@@ -706,12 +704,7 @@ class Likelihood:
             if fold:
                 sd = np.broadcast_to(self._cached(theta, "sd", lambda c: self.emulator.predict(c, return_std=True)[1]),
                                      np.shape(y))
-        y = np.asarray(y, dtype=float)
-        self._last_prediction = (theta.copy(), y)
-        if y.shape[-1] != self.spec.n_outputs:
-            raise ValueError(
-                f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}"
-            )
+        y = self._record(theta, y)
         mu, sig = stats_to_gaussian(y, self.spec.n_cells)
         add = np.full(mu.shape, self.velocity_floor**2)
         if sd is not None:
@@ -722,14 +715,20 @@ class Likelihood:
         dens = np.ascontiguousarray(stats_to_vr_density(y, self.spec)) if self.spec.n_vbins else None
         return np.ascontiguousarray(mu), np.ascontiguousarray(sig), dens
 
+    def _record(self, theta, y) -> np.ndarray:
+        """The emulated summaries ``y`` of ``theta`` as floats, kept as the last prediction and
+        checked against the summary definition."""
+        y = np.asarray(y, dtype=float)
+        self._last_prediction = (theta.copy(), y)
+        if y.shape[-1] != self.spec.n_outputs:
+            raise ValueError(
+                f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}")
+        return y
+
     def _evaluate(self, theta, want_grad: bool, want_fisher: bool = True):
         if self.emulator_error != "per-star" and not self.spec.n_vbins:  # the hot path: one compiled pass
             theta = np.atleast_2d(np.asarray(theta, dtype=float))
-            y = np.asarray(self.emulator.predict(theta), dtype=float)
-            self._last_prediction = (theta.copy(), y)
-            if y.shape[-1] != self.spec.n_outputs:
-                raise ValueError(
-                    f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}")
+            y = self._record(theta, self.emulator.predict(theta))
             mu, tri = _cell_gaussians_tri(np.ascontiguousarray(y), self.spec.n_cells, self.velocity_floor**2)
             return _run_kernels(self._packed, mu, tri, want_grad, None, want_fisher)
         mu, sig, dens = self._cell_model(theta)
