@@ -466,3 +466,76 @@ def test_metadata_must_be_json(em_rbf, tmp_path):
     with pytest.raises(ValueError, match="metadata: must be plain JSON"):
         save(em_rbf, tmp_path / "x", metadata={"when": object()})
     assert not (tmp_path / "x").exists()
+
+
+# ------------------------------------------------------------------------- scaled outputs
+
+
+def linear_response(theta):
+    """Outputs that vanish at q_y = 1 as a linear response to s = 1/q_y² − 1 does (the azimuthal
+    statistics of the summaries): y0 = s (1 + x1²), y1 = log|s| + 0.3 x2 (the log of a scatter
+    ∝ |s|), y2 = sin(x1) + x3 (unscaled); exact everywhere."""
+    x = to_x(theta)
+    s = 1.0 / theta[:, 0] ** 2 - 1.0
+    with np.errstate(divide="ignore"):
+        return np.stack([s * (1 + x[:, 1] ** 2), np.log(np.abs(s)) + 0.3 * x[:, 2], np.sin(x[:, 1]) + x[:, 3]], 1)
+
+
+SCALED = {"parameter": "q_y", "linear": [0], "log": [1]}
+
+
+@pytest.fixture(scope="module")
+def em_scaled():
+    theta = design(64, seed=4)
+    y = linear_response(theta)
+    v = np.full_like(y, 1e-8)
+    v[:, 0] *= (1.0 / theta[:, 0] ** 2 - 1.0) ** 2  # the noise of a linear response scales with it
+    return GPEmulator(NAMES, BOUNDS, kernel="rbf", n_restarts=0, n_pca=3, random_state=5,
+                      scaled_outputs=SCALED).fit(theta, y, y_var=v)
+
+
+def test_scaled_outputs_vanish_exactly_at_one_and_follow_the_analytic_response(em_scaled, rng):
+    """Analytic reference: the linear output is zero at q_y = 1 (to SCALE_FLOOR) and the log
+    output at log(SCALE_FLOOR) + its smooth part, where an unscaled GP smooths over the zero;
+    elsewhere both match the analytic response."""
+    from swerve.emulate import SCALE_FLOOR
+
+    th = held_out(rng, 200)
+    th[:50, 0] = 1.0
+    mean, std = em_scaled.predict(th, return_std=True)
+    x = to_x(th)
+    assert np.all(np.abs(mean[:50, 0]) <= 10 * SCALE_FLOOR) and np.all(std[:50, 0] <= 10 * SCALE_FLOOR)
+    np.testing.assert_allclose(mean[:50, 1], np.log(SCALE_FLOOR) + 0.3 * x[:50, 2], atol=0.01)
+    off = np.abs(th[:, 0] - 1.0) > 0.02
+    truth = linear_response(th[off])
+    np.testing.assert_allclose(mean[off], truth, atol=0.02)
+    # the unscaled GP of the same data: a clearly non-zero value at q_y = 1
+    theta = em_scaled.theta_train_
+    plain = GPEmulator(NAMES, BOUNDS, kernel="rbf", n_restarts=0, random_state=5).fit(theta, em_scaled.y_train_[:, [0, 2]])
+    assert np.max(np.abs(plain.predict(th[:50])[:, 0])) > 100 * np.max(np.abs(mean[:50, 0]))
+
+
+def test_scaled_outputs_std_cov_and_file_round_trip(em_scaled, tmp_path, rng):
+    th = held_out(rng, 40)
+    m1, sd = em_scaled.predict(th, return_std=True)
+    m2, cov = em_scaled.predict(th, return_cov=True)
+    np.testing.assert_array_equal(m1, m2)
+    np.testing.assert_allclose(np.sqrt(np.diagonal(cov, axis1=1, axis2=2)), sd, rtol=1e-10)
+    em2 = load(save(em_scaled, tmp_path / "scaled"))
+    assert em2.scaled_outputs == SCALED
+    for kw in ({}, {"return_std": True}, {"return_cov": True}):
+        a, b = em_scaled.predict(th, **kw), em2.predict(th, **kw)
+        for u, v in zip(a if isinstance(a, tuple) else (a,), b if isinstance(b, tuple) else (b,)):
+            np.testing.assert_array_equal(u, v)
+
+
+@pytest.mark.parametrize("so, match", [
+    ({"parameter": "q_x", "linear": [0]}, "not one of"),
+    ({"parameter": "q_y", "linear": [0], "log": [0]}, "distinct output indices"),
+    ({"parameter": "q_y", "linear": [7]}, "distinct output indices"),
+    ({"parameter": "q_y", "lin": [0]}, "expected a table"),
+])
+def test_bad_scaled_outputs_are_refused(so, match):
+    theta = design(8)
+    with pytest.raises(ValueError, match=match):
+        GPEmulator(NAMES, BOUNDS, n_restarts=0, scaled_outputs=so).fit(theta, analytic(theta))

@@ -107,3 +107,43 @@ def test_bad_training_config(tmp_path, capsys):
     bad.write_text("[design]\nsise = 3\n")
     assert main(["train", str(bad), "--out", str(tmp_path / "o")]) == 1
     assert "did you mean 'size'" in capsys.readouterr().err
+
+
+def test_other_emulator_settings_reuse_the_simulations(smoke_run, tmp_path, capsys):
+    """[emulator] does not enter the run folder's hash: refitting with scale_azimuthal reuses every
+    point, and the refitted emulator's v_pf statistics vanish at q_y = 1, where a radial launch in
+    an axisymmetric Galaxy keeps L_z = 0 (so v_φ = 0; Binney & Tremaine 2008 §3.2, an
+    axisymmetric potential conserves L_z); the unscaled smoke emulator only approximates that."""
+    import shutil
+
+    from swerve.emulate import SCALE_FLOOR, load
+    from swerve.summaries import azimuthal_outputs
+
+    run_dir, emu_dir = smoke_run
+    run = tmp_path / "run"
+    shutil.copytree(run_dir, run)
+    cfg = tmp_path / "scaled.toml"
+    cfg.write_text(SMOKE.read_text().replace("[emulator]", "[emulator]\nscale_azimuthal = true"))
+    assert main(["train", str(cfg), "--out", str(run), "--no-progress", "--jobs", "1"]) == 0
+    assert "0 computed, 8 already done" in capsys.readouterr().out
+    setup = load_training_config(SMOKE)
+    idx = azimuthal_outputs(setup.spec)
+    names = setup.spec.output_names()
+    assert {names[i].split("_", 1)[1] for i in idx["linear"]} == {"mean_vpf", "l_pr", "l_pt"}
+    assert {names[i].split("_", 1)[1] for i in idx["log"]} == {"log_l_pp"}
+    theta = np.array([[1.0, q_z, -0.5] for q_z in (0.8, 1.0, 1.2)])
+    scaled = load(run / "emulator").predict(theta)
+    assert np.max(np.abs(scaled[:, idx["linear"]])) < 100 * SCALE_FLOOR
+    assert np.max(scaled[:, idx["log"]]) < np.log(SCALE_FLOOR) + 5
+    plain = load(emu_dir).predict(theta)
+    assert np.max(np.abs(plain[:, idx["linear"]])) > 1000 * np.max(np.abs(scaled[:, idx["linear"]]))
+
+
+def test_scale_azimuthal_needs_q_y_inferred(tmp_path, capsys):
+    cfg = tmp_path / "noqy.toml"
+    text = SMOKE.read_text().replace("infer = { q_y = [0.8, 1.2], q_z = [0.8, 1.2] }", "infer = { q_z = [0.8, 1.2] }")
+    text = text.replace("size = 8", "size = 3").replace("points_per_galaxy = 2", "points_per_galaxy = 1")
+    cfg.write_text(text.replace("[emulator]", "[emulator]\nscale_azimuthal = true"))
+    assert main(["train", str(cfg), "--out", str(tmp_path / "run"), "--no-progress", "--jobs", "1"]) == 1
+    err = capsys.readouterr().err
+    assert "scale_azimuthal needs q_y" in err and err.count("\n") == 1

@@ -79,6 +79,10 @@ CHECKSUMS_FILE = "checksums.sha256"
 JITTER = 1e-10
 #: θ rows predicted per block (bounds the (components, block, n_train) cross-kernel).
 _BLOCK = 1024
+#: Smallest ``|1/p² − 1|`` of a scaled output's factor (``GPEmulator``'s ``scaled_outputs``): at
+#: p = 1 a ``log`` output is predicted as log(1e-6) + its ratio, the floor the summaries put on
+#: a vanishing Cholesky diagonal (:mod:`swerve.summaries`).
+SCALE_FLOOR = 1e-6
 
 
 class EmulatorFileError(ValueError):
@@ -264,6 +268,18 @@ class GPEmulator(RegressorMixin, BaseEstimator):
     metadata : dict, optional
         Free-form JSON-able description (selection and summary definitions, fixed Galaxy and
         solar parameters, training provenance); written to the file and kept on load.
+    scaled_outputs : dict, optional
+        Outputs known to vanish where a parameter ``p`` equals 1, emulated divided by the factor
+        ``s(p) = 1/p² − 1``: ``{"parameter": name, "linear": [indices], "log": [indices]}``.
+        Each ``linear`` output is fitted as ``y / s`` and predicted as ``s ·`` (the GP's value),
+        its standard deviation times ``|s|``; each ``log`` output (the log of a non-negative
+        quantity proportional to ``|s|``) is fitted as ``y − log|s|`` and predicted as
+        ``log|s| +`` (the GP's value). ``|s|`` is kept at least ``SCALE_FLOOR``. For the
+        summaries, the azimuthal row of every cell's statistics (:mod:`swerve.summaries`):
+        a radial orbit's v_φ is a linear response to the triaxial torque ``∝ (1/q_y² − 1)``, so
+        it is zero at q_y = 1 exactly, while a GP of the raw statistics smooths that zero
+        (``log l_pp`` drops to the floor ``log 1e-6`` there but is about ``log 0.3`` a design
+        spacing away). The ratios are smooth through q_y = 1.
 
     Attributes
     ----------
@@ -320,6 +336,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         noise_level_bounds=(1e-10, 1.0),
         constant_bounds=(1e-4, 1e4),
         metadata=None,
+        scaled_outputs=None,
     ):
         self.parameter_names = parameter_names
         self.bounds = bounds
@@ -335,6 +352,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         self.noise_level_bounds = noise_level_bounds
         self.constant_bounds = constant_bounds
         self.metadata = metadata
+        self.scaled_outputs = scaled_outputs
 
     # ----------------------------------------------------------------------------- validation
 
@@ -375,6 +393,57 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             r, c = np.argwhere(~np.isfinite(a))[0]
             raise ValueError(f"{name}: non-finite value {a[r, c]} at row {r}, column {c}")
         return a
+
+    def _scaling(self, names, m):
+        """``(parameter column, linear indices, log indices)`` of ``scaled_outputs``, checked, or None."""
+        so = self.scaled_outputs
+        if so is None:
+            return None
+        if not isinstance(so, Mapping) or set(so) - {"parameter", "linear", "log"} or "parameter" not in so:
+            raise ValueError("scaled_outputs: expected a table with 'parameter', 'linear' and 'log', "
+                             f"got {so!r}")
+        if so["parameter"] not in names:
+            raise ValueError(f"scaled_outputs: parameter {so['parameter']!r} is not one of {names}")
+        lin = np.asarray(so.get("linear", []), dtype=int).reshape(-1)
+        log = np.asarray(so.get("log", []), dtype=int).reshape(-1)
+        both = np.concatenate([lin, log])
+        if both.size and (both.min() < 0 or both.max() >= m or len(set(both.tolist())) != both.size):
+            raise ValueError(f"scaled_outputs: expected distinct output indices in 0..{m - 1}, got {so!r}")
+        return names.index(so["parameter"]), lin, log
+
+    @staticmethod
+    def _factor(p):
+        """``s(p) = 1/p² − 1`` with ``|s| >= SCALE_FLOOR`` (sign kept, + at p = 1)."""
+        s = 1.0 / np.asarray(p, dtype=float) ** 2 - 1.0
+        return np.where(s < 0, np.minimum(s, -SCALE_FLOOR), np.maximum(s, SCALE_FLOOR))
+
+    def _to_fit_space(self, scaling, theta, y, y_var):
+        """Training outputs (and their variances) divided by the factor (see ``scaled_outputs``)."""
+        col, lin, log = scaling
+        s = self._factor(theta[:, col])[:, None]
+        y = y.copy()
+        y[:, lin] /= s
+        y[:, log] -= np.log(np.abs(s))
+        if y_var is not None:
+            y_var = y_var.copy()
+            y_var[:, lin] /= s**2
+        return y, y_var
+
+    def _from_fit_space(self, th, res, want_cov):
+        """Predictions (mean, and std or cov) of the GP -> outputs (see ``scaled_outputs``)."""
+        col, lin, log = self._scale
+        s = self._factor(th[:, col])[:, None]
+        mean = res[0]
+        mean[:, lin] *= s
+        mean[:, log] += np.log(np.abs(s))
+        if len(res) == 1:
+            return res
+        if not want_cov:
+            res[1][:, lin] *= np.abs(s)
+            return res
+        D = np.ones(mean.shape)
+        D[:, lin] = s
+        return mean, res[1] * D[:, :, None] * D[:, None, :]
 
     # ------------------------------------------------------------------------------------ fit
 
@@ -430,6 +499,10 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         ls_bounds = _check_pair("length_scale_bounds", self.length_scale_bounds)
         nl_bounds = _check_pair("noise_level_bounds", self.noise_level_bounds)
         cb = _check_pair("constant_bounds", self.constant_bounds)
+        scaling = self._scaling(names, m)
+        y_raw, y_var_raw = y, y_var
+        if scaling is not None:
+            y, y_var = self._to_fit_space(scaling, theta, y, y_var)
 
         X = (theta - lo) / (hi - lo)
         y_mean = y.mean(axis=0)
@@ -501,8 +574,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         self.n_outputs_ = m
         self.n_components_ = G
         self.theta_train_ = theta.copy()
-        self.y_train_ = y.copy()
-        self.y_var_train_ = None if y_var is None else y_var.copy()
+        self.y_train_ = y_raw.copy()
+        self.y_var_train_ = None if y_var_raw is None else y_var_raw.copy()
         self.X_train_ = X
         self.y_mean_ = y_mean
         self.y_scale_ = y_scale
@@ -543,6 +616,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         names, lo, hi = self._domain()
         self._names, self._lo, self._hi = names, lo, hi
         self._span = hi - lo
+        self._scale = self._scaling(names, self.n_outputs_)
         Xs = self.X_train_[None, :, :] / self.length_scale_[:, None, :]
         self._XsT = np.ascontiguousarray(Xs.transpose(0, 2, 1))
         # Fortran order once, so that each predict is one BLAS triangular solve per component.
@@ -610,6 +684,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         for start in range(0, q, _BLOCK):
             sl = slice(start, min(start + _BLOCK, q))
             res = self._predict_block(th[sl], return_std or return_cov, return_cov, include_noise)
+            if self._scale is not None:
+                res = self._from_fit_space(th[sl], res, return_cov)
             for o, r in zip(out, res):
                 o[sl] = r
         if single:
@@ -680,7 +756,11 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         n = self.X_train_.shape[0]
         t_var = None
         if self.y_var_train_ is not None:
-            z_var = self.y_var_train_ / self.y_scale_**2
+            y_var = self.y_var_train_
+            scaling = self._scaling(self._domain()[0], self.n_outputs_)
+            if scaling is not None:
+                y_var = self._to_fit_space(scaling, self.theta_train_, self.y_train_, y_var)[1]
+            z_var = y_var / self.y_scale_**2
             t_var = z_var if self.components_ is None else (z_var @ (self.components_.T**2)) / self.score_scale_**2
         builder = _KERNELS[self.kernel][1]
         L = np.empty((self.n_components_, n, n))
@@ -723,6 +803,12 @@ class GPEmulator(RegressorMixin, BaseEstimator):
                 "constant_bounds": [float(v) for v in self.constant_bounds],
                 "random_state": int(self.random_state) if isinstance(self.random_state, (int, np.integer)) else None,
                 "jitter": JITTER,
+                "scaled_outputs": None if self.scaled_outputs is None else {
+                    "parameter": str(self.scaled_outputs["parameter"]),
+                    "factor": "1/p^2 - 1",
+                    "linear": [int(i) for i in self.scaled_outputs.get("linear", [])],
+                    "log": [int(i) for i in self.scaled_outputs.get("log", [])],
+                },
             },
             "kernel": {
                 "family": self.kernel,
@@ -821,6 +907,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             noise_level_bounds=tuple(st.get("noise_level_bounds", (1e-10, 1.0))),
             constant_bounds=tuple(st.get("constant_bounds", (1e-4, 1e4))),
             metadata=doc.get("metadata"),
+            scaled_outputs=_scaled_from_doc(st.get("scaled_outputs"), where),
         )
         em.n_features_in_, em.n_outputs_, em.n_components_ = d, m, G
         em.theta_train_ = arrays["theta_train"]
@@ -844,6 +931,15 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             raise EmulatorFileError(f"{where}: {exc}") from None
         em._prepare()
         return em
+
+
+def _scaled_from_doc(value, where):
+    """``scaled_outputs`` of an emulator file (None when absent), its factor checked."""
+    if value is None:
+        return None
+    if not isinstance(value, dict) or value.get("factor") != "1/p^2 - 1":
+        raise EmulatorFileError(f"{where}: unknown scaled_outputs {value!r} in {JSON_FILE}")
+    return {k: value[k] for k in ("parameter", "linear", "log") if k in value}
 
 
 def _check_pair(name, value):

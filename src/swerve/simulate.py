@@ -84,11 +84,25 @@ TRAIN_SCHEMA = Schema("train", (
         Key("kernel", "str", "matern52", choices=("matern52", "rbf"), doc="GP kernel"),
         Key("n_pca", "int", 0, min=0, doc="PCA components of the outputs (0: one GP per output)"),
         Key("n_restarts", "int", 2, min=0, doc="optimizer restarts per GP"),
+        Key("scale_azimuthal", "bool", False,
+            doc="emulate the v_pf statistics divided by (1/q_y^2 - 1), so that they vanish at q_y = 1 "
+            "(needs q_y inferred)"),
     )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set recorded with the emulator"),
     )),
 ))
+
+
+def simulation_hash(cfg) -> str:
+    """Hash of what a training run's simulations depend on: the validated configuration without
+    its ``[emulator]`` section, so that refitting the emulator another way (``swerve train`` on
+    the same run folder with other ``[emulator]`` settings) reuses the simulations. Run folders
+    (``run.json``, every point file) carry this hash; the emulator records the full
+    :func:`swerve.config.config_hash` too."""
+    from .config import config_hash
+
+    return config_hash({k: v for k, v in cfg.items() if k != "emulator"})
 
 
 class TrainingSetup:
@@ -212,6 +226,7 @@ class TrainingSetup:
 
         return {
             "config_hash": config_hash(self.cfg),
+            "simulation_hash": simulation_hash(self.cfg),
             "config": self.cfg,
             "galaxy": {"model": self.cfg["galaxy"]["model"], "halo_flattening": self.cfg["galaxy"]["halo_flattening"],
                        "fixed": self.galaxy_fixed,

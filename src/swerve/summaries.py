@@ -359,6 +359,17 @@ def compute_summaries(spec: SummarySpec, pos, vel, weight, orbit, rng, strict: b
     return SummaryResult(values=values, noise_var=noise_var, ess=ess, n_samples=counts, meta=meta)
 
 
+def azimuthal_outputs(spec: SummarySpec) -> dict:
+    """Indices of the statistics of v_pf's row in every cell: ``{"linear": mean_vpf, l_pr, l_pt;
+    "log": log_l_pp}``. A radial orbit's v_φ responds linearly to the triaxial torque
+    ``∝ (1/q_y² − 1)``: all four vanish at q_y = 1 (``log_l_pp`` goes to its floor), which the
+    emulator builds in by emulating them divided by that factor
+    (:class:`swerve.emulate.GPEmulator`'s ``scaled_outputs``; ``[emulator] scale_azimuthal``)."""
+    base = np.arange(spec.n_cells) * N_STAT
+    lin = np.sort(np.concatenate([base + STAT_NAMES.index(n) for n in ("mean_vpf", "l_pr", "l_pt")]))
+    return {"linear": lin.tolist(), "log": (base + STAT_NAMES.index("log_l_pp")).tolist()}
+
+
 def stats_to_gaussian(values, n_cells: int):
     """Per-cell mean vectors (..., n_cells, 3) and covariance matrices (..., n_cells, 3, 3) from
     summary vectors (..., n_cells * 9, or longer: the first n_cells * 9 values are used); every

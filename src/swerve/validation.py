@@ -436,10 +436,12 @@ def check_inputs(emulator_dir, held_out_dir):
     setup = training_setup_from_dict(meta["config"], source=f"{emulator_dir} (training configuration)")
     status = run_status(held_out_dir)
     # the emulator's configuration as recorded, and as today's schema reads it (options added
-    # since, at their defaults, do not change the training): a held-out run made now hashes the latter
+    # since, at their defaults, do not change the training), in full (run folders made before
+    # swerve 0.1's simulation hash) or without [emulator] (made since): swerve train hashes the latter
     from .config import config_hash
+    from .simulate import simulation_hash
 
-    if status.config_hash not in (meta.get("config_hash"), config_hash(setup.cfg)):
+    if status.config_hash not in (meta.get("config_hash"), config_hash(setup.cfg), simulation_hash(setup.cfg)):
         raise ValueError(f"--held-out: {held_out_dir} was made with another training configuration "
                          f"(hash {status.config_hash[:12]}) than the emulator's ({str(meta.get('config_hash'))[:12]})")
     if not status.held_out:

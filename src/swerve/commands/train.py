@@ -40,8 +40,8 @@ def add_parser(sub):
 
 
 def run(args) -> int:
-    from ..config import config_hash, template
-    from ..simulate import TRAIN_SCHEMA, load_training_config, simulate_point, training_table
+    from ..config import template
+    from ..simulate import TRAIN_SCHEMA, load_training_config, simulate_point, simulation_hash, training_table
     from ..training import collect, make_design, run_design
 
     if args.template:
@@ -53,6 +53,9 @@ def run(args) -> int:
         raise CommandError(f"{args.config}: no such configuration file")
     setup = load_training_config(args.config)
     cfg = setup.cfg
+    if cfg["emulator"]["scale_azimuthal"] and "q_y" not in setup.parameter_names:
+        raise CommandError(f"{args.config}: [emulator] scale_azimuthal needs q_y among the inferred "
+                           "parameters ([galaxy] infer)")
     d = cfg["design"]
     n = d["held_out_size"] if args.held_out else d["size"]
     names, points = make_design(setup.galaxy_infer, n, method=d["method"], seed=d["seed"], held_out=args.held_out)
@@ -60,7 +63,7 @@ def run(args) -> int:
     task = functools.partial(simulate_point, cfg)
     t0 = time.perf_counter()
     summary = run_design(
-        task, points, names, args.out, config_hash(cfg), d["seed"], n_jobs=args.jobs, backend=backend,
+        task, points, names, args.out, simulation_hash(cfg), d["seed"], n_jobs=args.jobs, backend=backend,
         dask_address=args.dask, dask_local_workers=args.dask_local, progress=not args.no_progress,
         held_out=args.held_out,
     )
@@ -77,17 +80,19 @@ def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
     import numpy as np
 
     from ..emulate import GPEmulator, save
+    from ..summaries import azimuthal_outputs
 
     names, theta, outputs = collect(args.out)
     X, Y, V = training_table(setup, theta, outputs)
     if not np.all(np.isfinite(Y)):
         raise CommandError("training summaries contain NaN: enlarge [bank] n_orbits or merge cells")
     e = setup.cfg["emulator"]
+    scaled = {"parameter": "q_y", **azimuthal_outputs(setup.spec)} if e["scale_azimuthal"] else None
     t0 = time.perf_counter()
     emu = GPEmulator(
         setup.parameter_names, setup.bounds, kernel=e["kernel"], n_restarts=e["n_restarts"],
         n_pca=e["n_pca"] or None, random_state=setup.cfg["design"]["seed"], units=setup.units,
-        output_names=setup.spec.output_names(),
+        output_names=setup.spec.output_names(), scaled_outputs=scaled,
     ).fit(X, Y, y_var=V)
     fit_s = time.perf_counter() - t0
     meta = setup.metadata()
