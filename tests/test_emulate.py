@@ -523,6 +523,7 @@ def test_scaled_outputs_std_cov_and_file_round_trip(em_scaled, tmp_path, rng):
     np.testing.assert_allclose(np.sqrt(np.diagonal(cov, axis1=1, axis2=2)), sd, rtol=1e-10)
     em2 = load(save(em_scaled, tmp_path / "scaled"))
     assert em2.scaled_outputs == SCALED
+    assert "scaled outputs: 1 linear and 1 log outputs emulated divided by s = 1/q_y^2 - 1" in describe(tmp_path / "scaled")
     for kw in ({}, {"return_std": True}, {"return_cov": True}):
         a, b = em_scaled.predict(th, **kw), em2.predict(th, **kw)
         for u, v in zip(a if isinstance(a, tuple) else (a,), b if isinstance(b, tuple) else (b,)):

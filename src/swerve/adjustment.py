@@ -4,7 +4,7 @@
 The per-cell Gaussian is a quasi-likelihood: its curvature overstates the information in some
 directions (``benchmarks/diagnose_model.py sandwich``: the score of the disk mass and the launch
 slope varies 1.5-1.7x more than the curvature says), so its posteriors are too narrow there
-(with the adjustment and the finer-cell emulator of ``training/fine.toml`` the 68% and 95%
+(with the adjustment and the 32-cell default emulator of ``training/default.toml`` the 68% and 95%
 intervals of every parameter cover the truth at their nominal rates on 100-star catalogs:
 benchmarks/RESULTS.md). The
 adjustment of composite likelihoods (Chandler & Bate 2007, Biometrika 94, 167; from memory)

@@ -1261,6 +1261,10 @@ def describe(source) -> str:
             f"of the standardised variance; truncation residual (sum over outputs) "
             f"{pca['residual_variance_total']:.3g}"
         )
+    so = doc["settings"].get("scaled_outputs")
+    if so:
+        lines.append(f"  scaled outputs: {len(so['linear'])} linear and {len(so['log'])} log outputs emulated divided by "
+                     f"s = 1/{so['parameter']}^2 - 1 (zero at {so['parameter']} = 1)")
     ls = np.asarray(k["length_scale"])
     lines.append(
         f"  kernel: {k['family']}, {k['n_components']} component GPs; length scales (unit cube) "
