@@ -251,21 +251,8 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     names = list(emu.parameter_names)
     bounds = np.asarray(emu.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
-    post = Posterior(like, priors)
+    plain = Posterior(like, priors)
     s = cfg["sampler"]
-    adjustment = None
-    if cfg["likelihood"]["adjust"]:
-        from threadpoolctl import threadpool_limits
-
-        from .adjustment import adjusted_posterior
-
-        with threadpool_limits(limits=1, user_api="blas"):
-            post, x_map, C, info = adjusted_posterior(post, like, bounds, np.random.default_rng(s["seed"]))
-        theta_hat = post.full(x_map)[0]
-        adjustment = {"theta_hat": dict(zip(names, theta_hat.tolist())), "C": C.tolist(),
-                      "kappa": np.asarray(info["kappa"]).tolist(), "widened": info["adjusted"]}
-        notes.append("likelihood: curvature adjustment at the maximum; the score-to-curvature ratios of its "
-                     "informative directions: " + ", ".join(f"{k:.2f}" for k in info["kappa"]))
 
     # what defines the chain: the stars, the emulator and the configuration, except the step cap
     # (raising max_steps continues the same chain)
@@ -278,6 +265,20 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     target_key = hashlib.sha256((json.dumps(key_cfg, sort_keys=True, default=str) + content_hash(emulator_path)
                                  + __version__).encode()).hexdigest()
     state = _read_state(state_file)
+    changed = chain.exists() and (state is None or state["key"] != data_key)
+    added = _stars_added(state, terms.ids, target_key) if changed else []
+    reweight = bool(added) and s["refit"] == "reweight"
+    if reweight and cfg["likelihood"]["adjust"] and not state.get("adjustment"):
+        notes.append("refit: the previous chain records no curvature adjustment, so it is not reweighted "
+                     "by the adjusted likelihood; sampled anew")
+        reweight = False
+    post, adjustment = plain, None
+    if cfg["likelihood"]["adjust"]:
+        # while a chain is reweighted by added stars, the adjustment stays the chain's own: adding
+        # a star moves the estimated maximum and matrix by their noise (the maximum of a wide
+        # posterior by a good part of its width), which would shift the target and spoil the
+        # weights; a new chain gets a new adjustment
+        post, adjustment = _adjusted(plain, like, bounds, s, names, notes, state["adjustment"] if reweight else None)
     res = previous_start = None
     t1 = time.perf_counter()
     # BLAS on one thread while sampling: the emulator's matrices are small (threads only add
@@ -285,14 +286,8 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
-        if chain.exists() and (state is None or state["key"] != data_key):
-            added = _stars_added(state, terms.ids, target_key)
-            if added and s["refit"] == "reweight" and adjustment is not None and not state.get("adjustment"):
-                notes.append("refit: the previous chain records no curvature adjustment, so it is not reweighted "
-                             "by the adjusted likelihood; sampled anew")
-            elif added and s["refit"] == "reweight":
-                # with the adjustment, the ratio of the new catalog's adjusted posterior (adjusted at
-                # its own maximum, just computed) to the chain's (the adjustment it recorded)
+        if changed:
+            if reweight:
                 res, start, why = _reweight(chain, state, post, terms, s, like_options, priors,
                                             bounds if adjustment is not None else None)
                 if res is not None:
@@ -302,6 +297,9 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                     notes.append(f"refit: reweighting the previous chain by the {len(added)} added star(s) was "
                                  f"not reliable ({why}); a new chain was started from the reweighted samples")
                     previous_start = start
+                    if adjustment is not None:  # the new chain gets its own adjustment
+                        notes[:] = [n for n in notes if not n.startswith("likelihood: curvature adjustment")]
+                        post, adjustment = _adjusted(plain, like, bounds, s, names, notes, None)
             if res is None:
                 if previous_start is None:
                     previous_start = _last_walkers(chain, post.ndim)
@@ -309,7 +307,9 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                                  "was started from the previous one's final walkers")
                 chain.unlink()
         if res is None:
-            adj_state = None if adjustment is None else {"theta_hat": theta_hat.tolist(), "C": C.tolist()}
+            adj_state = None if adjustment is None else {k: adjustment[k] for k in ("C", "kappa", "widened")}
+            if adj_state is not None:
+                adj_state["theta_hat"] = [adjustment["theta_hat"][n] for n in names]
             _write_state(state_file, data_key, target_key, terms.ids, converged=False, adjustment=adj_state)
             res = _sample(sample_posterior, post, s, chain, progress, previous_start)
             _write_state(state_file, data_key, target_key, terms.ids, converged=res.converged, adjustment=adj_state)
@@ -344,6 +344,33 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                    content_hash(emulator_path), solar, meta, priors)
     text = terminal_summary(summary, catalog_path, emulator_path)
     return FitOutcome(summary, out_dir, text)
+
+
+def _adjusted(plain, like, bounds, s, names, notes, recorded=None):
+    """The curvature-adjusted posterior and the summary's record of its adjustment: estimated at
+    the maximum of ``plain`` (:func:`swerve.adjustment.adjusted_posterior`), or, with
+    ``recorded`` (a chain state's ``theta_hat``, ``C`` and, when recorded, ``kappa``), that one
+    reused."""
+    from threadpoolctl import threadpool_limits
+
+    from .adjustment import AdjustedLikelihood, adjusted_posterior
+    from .sampling import Posterior
+
+    if recorded is not None:
+        theta_hat, C = np.asarray(recorded["theta_hat"], dtype=float), np.asarray(recorded["C"], dtype=float)
+        post = Posterior(AdjustedLikelihood(like, theta_hat, C, *np.asarray(bounds, dtype=float).T), plain.priors)
+        kappa, widened = recorded.get("kappa"), recorded.get("widened")
+        notes.append("likelihood: the curvature adjustment of the chain being reweighted (kept while stars are added)")
+    else:
+        with threadpool_limits(limits=1, user_api="blas"):
+            post, x_map, C, info = adjusted_posterior(plain, like, bounds, np.random.default_rng(s["seed"]))
+        theta_hat = plain.full(x_map)[0]
+        kappa, widened = np.asarray(info["kappa"]).tolist(), bool(info["adjusted"])
+        notes.append("likelihood: curvature adjustment at the maximum; the score-to-curvature ratios of its "
+                     "informative directions: " + ", ".join(f"{k:.2f}" for k in kappa))
+    return post, {"theta_hat": dict(zip(names, np.asarray(theta_hat, dtype=float).tolist())),
+                  "C": np.asarray(C, dtype=float).tolist(), "kappa": kappa, "widened": widened,
+                  "reused": recorded is not None}
 
 
 def _sample(sample_posterior, post, s, chain, progress, start):
@@ -399,8 +426,9 @@ def _reweight(chain, state, post, terms, s, like_options, priors, bounds=None):
     chain (burn-in discarded, thinned as a fit thins it), both posteriors in the same batches so
     the emulator-variance cache is the same for both. With ``bounds`` (the emulator's), the
     chain sampled a curvature-adjusted likelihood: the old posterior is rebuilt with the
-    adjustment the state records, and ``post`` is the new catalog's adjusted one (its own
-    maximum and matrix), so the weights also carry the change of the adjustment. Returns
+    adjustment the state records, and ``post`` is the new catalog's likelihood under that same
+    adjustment (``run_fit`` keeps it while reweighting), so the weights are the added stars'
+    likelihood and the change of the catalog-level emulator term. Returns
     ``(result, None, diagnostics)``
     when the weights are reliable (:class:`swerve.sampling.ImportanceWeights`), else ``(None,
     start, diagnostics)`` with ``start`` walkers drawn from the reweighted samples."""
