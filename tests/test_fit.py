@@ -119,6 +119,9 @@ def test_refit_falls_back_to_sampling_when_weights_are_unreliable(tmp_path, smok
     b = run_fit(mock_catalog, emu, out, cfg)
     assert b.summary["sampler"]["method"] == "sampled"
     assert any("was not reliable" in n for n in b.summary["notes"])
+    # the new chain gets its own curvature adjustment, estimated on all the stars
+    assert b.summary["likelihood"]["adjustment"]["reused"] is False
+    assert sum("curvature adjustment" in n for n in b.summary["notes"]) == 1
 
 
 def test_interrupted_fit_resumes(tmp_path, smoke_run, mock_catalog):

@@ -360,7 +360,7 @@ def _adjusted(plain, like, bounds, s, names, notes, recorded=None):
         theta_hat, C = np.asarray(recorded["theta_hat"], dtype=float), np.asarray(recorded["C"], dtype=float)
         post = Posterior(AdjustedLikelihood(like, theta_hat, C, *np.asarray(bounds, dtype=float).T), plain.priors)
         kappa, widened = recorded.get("kappa"), recorded.get("widened")
-        notes.append("likelihood: the curvature adjustment of the chain being reweighted (kept while stars are added)")
+        notes.append("likelihood: curvature adjustment of the chain being reweighted (kept while stars are added)")
     else:
         with threadpool_limits(limits=1, user_api="blas"):
             post, x_map, C, info = adjusted_posterior(plain, like, bounds, np.random.default_rng(s["seed"]))
