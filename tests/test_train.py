@@ -112,8 +112,8 @@ def test_bad_training_config(tmp_path, capsys):
 def test_other_emulator_settings_reuse_the_simulations(smoke_run, tmp_path, capsys):
     """[emulator] does not enter the run folder's hash: refitting with scale_azimuthal reuses every
     point, and the refitted emulator's v_pf statistics vanish at q_y = 1, where a radial launch in
-    an axisymmetric Galaxy keeps L_z = 0 (so v_φ = 0; Binney & Tremaine 2008 §3.2, an
-    axisymmetric potential conserves L_z); the unscaled smoke emulator only approximates that."""
+    an axisymmetric Galaxy keeps L_z = 0 (so v_φ = 0: an axisymmetric potential conserves L_z,
+    Binney & Tremaine 2008 §3.2, from memory); the unscaled smoke emulator only approximates that."""
     import shutil
 
     from swerve.emulate import SCALE_FLOOR, load

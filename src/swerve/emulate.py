@@ -277,9 +277,10 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         ``log|s| +`` (the GP's value). ``|s|`` is kept at least ``SCALE_FLOOR``. For the
         summaries, the azimuthal row of every cell's statistics (:mod:`swerve.summaries`):
         a radial orbit's v_φ is a linear response to the triaxial torque ``∝ (1/q_y² − 1)``, so
-        it is zero at q_y = 1 exactly, while a GP of the raw statistics smooths that zero
-        (``log l_pp`` drops to the floor ``log 1e-6`` there but is about ``log 0.3`` a design
-        spacing away). The ratios are smooth through q_y = 1.
+        it is zero at q_y = 1 exactly, while a GP of the raw statistics smooths that zero (the
+        32-cell emulator fitted without the scaling predicted a v_φ scatter of 0.01-0.43 km/s
+        at q_y = 1, where the simulations give the summaries' floor of 1e-6 km/s;
+        benchmarks/RESULTS.md). The ratios are smooth through q_y = 1.
 
     Attributes
     ----------
