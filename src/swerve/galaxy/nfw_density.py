@@ -33,7 +33,7 @@ Below ``tau_lo = e^t_lo`` the integrand is constant to O(tau_lo); above ``T = e^
 ``a_i^2 + tau ~ tau`` and the tail is the potential of a spherical NFW profile of scale radius
 ``r_s sqrt(T)``.  The reference (:func:`exact_scaled`) uses a fine step over a wide range
 (about 1e-14 relative); the fast form (:func:`build_nodes`, evaluated by
-:mod:`swerve.galaxy.expansion`) a coarse one (29 nodes; ~1e-7 to 2e-6 relative in force).
+:mod:`swerve.galaxy.expansion`) a coarse one (21 nodes; 3e-6 relative in force or better).
 """
 
 from __future__ import annotations
@@ -50,11 +50,13 @@ from .components import Component, NFWHaloPotentialFlat, _as_points
 #: reference quadrature: step in ln(tau) and range
 REFERENCE_STEP = 0.05
 REFERENCE_T_RANGE = (-50.0, 50.0)
-#: fast form: step in ln(tau) and range, 28 nodes plus one at tau = 0 (measured: force within
-#: 2e-7 of the reference for r/r_s <= 20, 2e-6 up to r/r_s = 1e3, axis ratios 0.5-1.5;
-#: see tests/test_nfw_density.py)
+#: fast form: step in ln(tau) and range, 20 nodes plus one at tau = 0.  Measured against the
+#: reference at 1e-3 to 2e4 kpc (r_s = 24.8 kpc), axis ratios 0.5-1.5: force within 3.2e-6,
+#: potential within 2.2e-6 (the force error comes from the tau -> 0 end, the potential's from the
+#: tail).  The former range (-12, 15), 29 nodes, gave 1.8e-6 and 8e-7 at 1.4x the cost;
+#: tests/test_nfw_density.py holds the force to 1e-5 (the design target).
 FAST_STEP = 1.0
-FAST_T_RANGE = (-12.0, 15.0)
+FAST_T_RANGE = (-8.0, 11.0)
 
 
 def _grid_end(step: float, t_lo: float, t_hi: float) -> tuple[int, float]:
@@ -168,7 +170,7 @@ class NFWHaloDensityFlat(Component):
     positive everywhere, unlike :class:`~swerve.galaxy.components.NFWHaloPotentialFlat`.
 
     Forces and potential of the compiled form come from a fixed trapezoidal quadrature of the
-    ellipsoidal-shell integrals (29 nodes, 2e-6 relative in force or better, conservative); :meth:`exact_potential`
+    ellipsoidal-shell integrals (21 nodes, 3e-6 relative in force or better, conservative); :meth:`exact_potential`
     and :meth:`exact_acceleration` evaluate the reference quadrature (~1e-14).  At
     ``q_y = q_z = 1`` both are the analytic spherical NFW halo.
 
