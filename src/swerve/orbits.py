@@ -62,6 +62,7 @@ from dataclasses import dataclass
 
 import numba as nb
 import numpy as np
+from numba import literal_unroll
 
 from . import orbit_lanes, simd, units
 from .galaxy import kernels
@@ -609,6 +610,19 @@ def _lane(a, row):
 
 
 @_inline
+def _store_lane(a, row, v):
+    """Write the lane vector ``v`` into row ``row`` of a (rows, W) array."""
+    a[row, 0] = v[0]
+    a[row, 1] = v[1]
+    a[row, 2] = v[2]
+    a[row, 3] = v[3]
+    a[row, 4] = v[4]
+    a[row, 5] = v[5]
+    a[row, 6] = v[6]
+    a[row, 7] = v[7]
+
+
+@_inline
 def _integrate_group(kinds, pars, aux, i0, i1, y0, t_end, t_out, order, n_out, r_stop, rtol,
                      atol, max_steps, pos_out, vel_out, y_final, res_f, res_i):
     """Integrate orbits i0 <= i < i1, eight at a time: each lane takes the next orbit as soon
@@ -659,10 +673,8 @@ def _integrate_group(kinds, pars, aux, i0, i1, y0, t_end, t_out, order, n_out, r
             kinds, pars, aux, _lane(st, 0), _lane(st, 1), _lane(st, 2), _lane(st, 3),
             _lane(st, 4), _lane(st, 5), _lane(st, 6), _lane(st, 7), _lane(st, 8), _lane(H, 0),
             rtol, atol)
-        for q in range(10):
-            v = out[q]
-            for l in range(W):
-                nw[q, l] = v[l]
+        for q in literal_unroll((0, 1, 2, 3, 4, 5, 6, 7, 8, 9)):
+            _store_lane(nw, q, out[q])
         for l in range(W):
             if LI[_L_ORB, l] >= 0:
                 if _after_step(kinds, pars, aux, l, st, nw, LF, LI, buf, tmp, t_out, order,
