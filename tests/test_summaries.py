@@ -147,3 +147,21 @@ def test_replicate_noise_matches_analytic_for_independent_samples(rng):
     assert res.meta["n_replicates"] == 8
     with pytest.raises(ValueError, match="at least two replicates"):
         compute_summaries(spec, pos, vel, np.ones(len(pos)), orbit, rng, replicate=np.zeros(len(pos)))
+
+
+def test_moment_sums_equal_numpy_bincount(rng):
+    # the compiled one-pass moments against numpy's bincount, bit for bit (same order, no FMA)
+    from swerve.summaries import _cell_moments
+
+    n, nc = 5000, 17
+    cell = rng.integers(0, nc, n)
+    cell[:3] = 0
+    comps = rng.normal(size=(n, 3)) * [400.0, 20.0, 5.0]
+    w = rng.exponential(size=n) * rng.poisson(1.0, n)  # bootstrap-like weights, zeros included
+    W, m, s = _cell_moments(cell, comps, w, nc)
+    np.testing.assert_array_equal(W, np.bincount(cell, weights=w, minlength=nc))
+    for a in range(3):
+        np.testing.assert_array_equal(m[:, a], np.bincount(cell, weights=w * comps[:, a], minlength=nc))
+    for k, (a, b) in enumerate(((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))):
+        np.testing.assert_array_equal(
+            s[:, k], np.bincount(cell, weights=w * comps[:, a] * comps[:, b], minlength=nc))
