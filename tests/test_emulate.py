@@ -252,6 +252,19 @@ def test_fit_is_reproducible_from_its_seed(training):
     np.testing.assert_array_equal(a.alpha_, b.alpha_)
 
 
+def test_parallel_fit_equals_serial_fit():
+    # the components fitted side by side in two processes: the same hyperparameters and predictions
+    theta = design(40, seed=4)
+    y = pca_family(theta)
+    kw = dict(kernel="matern52", n_restarts=1, n_pca=4, random_state=9)
+    a = GPEmulator(NAMES, BOUNDS, **kw).fit(theta, y)
+    b = GPEmulator(NAMES, BOUNDS, **kw).fit(theta, y, n_jobs=2)
+    np.testing.assert_allclose(b.length_scale_, a.length_scale_, rtol=1e-8)
+    np.testing.assert_allclose(b.constant_, a.constant_, rtol=1e-8)
+    th = design(16, seed=8)
+    np.testing.assert_allclose(b.predict(th), a.predict(th), rtol=1e-9, atol=1e-12)
+
+
 def test_theta_outside_bounds_is_refused_naming_the_parameter(em_rbf):
     th = np.array([[1.0, 1.42, 0.5, 0.5]])
     with pytest.raises(ValueError, match=r"^q_z = 1\.42 is outside the emulator's training bounds \[0\.7, 1\.3\]$"):

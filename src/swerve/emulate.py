@@ -220,6 +220,24 @@ _KERNELS = {"matern52": (0, _sk_matern52), "rbf": (1, _sk_rbf)}
 # --------------------------------------------------------------------------------------------
 
 
+def _fit_component(settings, X, t, alpha, seed):
+    """Fit one component's Gaussian process (a picklable task for :meth:`GPEmulator.fit`).
+    Returns the fitted regressor and the warnings raised, as (category, message) pairs."""
+    from sklearn.gaussian_process import GaussianProcessRegressor
+    from sklearn.gaussian_process.kernels import ConstantKernel, WhiteKernel
+
+    kernel, d, cb, ls_bounds, nl_bounds, white_noise, n_restarts = settings
+    kern = ConstantKernel(1.0, cb) * _KERNELS[kernel][1](np.full(d, 0.5), ls_bounds)
+    if white_noise:
+        kern = kern + WhiteKernel(float(np.clip(1e-4, *nl_bounds)), nl_bounds)
+    gp = GaussianProcessRegressor(kernel=kern, alpha=alpha, n_restarts_optimizer=n_restarts,
+                                  normalize_y=False, random_state=seed)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ConvergenceWarning)
+        gp.fit(X, t)
+    return gp, [(w.category, str(w.message)) for w in caught]
+
+
 class GPEmulator(RegressorMixin, BaseEstimator):
     """Gaussian-process emulator of a vector of summaries as a function of parameters θ.
 
@@ -448,7 +466,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
 
     # ------------------------------------------------------------------------------------ fit
 
-    def fit(self, theta, y, y_var=None):
+    def fit(self, theta, y, y_var=None, n_jobs=1):
         """Fit the emulator.
 
         Parameters
@@ -459,14 +477,15 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             Summaries at the training points.
         y_var : array-like of shape (n, m), optional
             Simulation-noise variance of ``y`` (independent between outputs and points).
+        n_jobs : int
+            Processes that fit the independent Gaussian processes (one per principal component)
+            side by side (joblib, loky; -1: all cores).  Each component has its own seed, so
+            the result does not depend on ``n_jobs`` beyond linear-algebra rounding.
 
         Returns
         -------
         self
         """
-        from sklearn.gaussian_process import GaussianProcessRegressor
-        from sklearn.gaussian_process.kernels import ConstantKernel, WhiteKernel
-
         names, lo, hi = self._domain()
         d = len(names)
         if self.kernel not in _KERNELS:
@@ -533,7 +552,15 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         G = t.shape[1]
 
         seeds = _component_seeds(self.random_state, G)
-        builder = _KERNELS[self.kernel][1]
+        settings = (self.kernel, d, cb, ls_bounds, nl_bounds, bool(self.white_noise), int(self.n_restarts))
+        alphas = [JITTER if t_var is None else t_var[:, c] + JITTER for c in range(G)]
+        if n_jobs == 1 or G == 1:
+            fitted = [_fit_component(settings, X, t[:, c], alphas[c], int(seeds[c])) for c in range(G)]
+        else:
+            from joblib import Parallel, delayed
+
+            fitted = Parallel(n_jobs=n_jobs, backend="loky")(
+                delayed(_fit_component)(settings, X, t[:, c], alphas[c], int(seeds[c])) for c in range(G))
         gps, records = [], []
         const = np.empty(G)
         lscale = np.empty((G, d))
@@ -541,26 +568,12 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         alpha = np.empty((G, n))
         chol = np.empty((G, n, n))
         lml = np.empty(G)
-        for c in range(G):
-            kern = ConstantKernel(1.0, cb) * builder(np.full(d, 0.5), ls_bounds)
-            if self.white_noise:
-                kern = kern + WhiteKernel(float(np.clip(1e-4, *nl_bounds)), nl_bounds)
-            a = JITTER if t_var is None else t_var[:, c] + JITTER
-            gp = GaussianProcessRegressor(
-                kernel=kern,
-                alpha=a,
-                n_restarts_optimizer=int(self.n_restarts),
-                normalize_y=False,
-                random_state=int(seeds[c]),
-            )
-            with warnings.catch_warnings(record=True) as caught:
-                warnings.simplefilter("always", ConvergenceWarning)
-                gp.fit(X, t[:, c])
-            for w in caught:
-                if issubclass(w.category, ConvergenceWarning):
-                    records.append(f"component {c}: {' '.join(str(w.message).split())}")
+        for c, (gp, caught) in enumerate(fitted):
+            for category, message in caught:
+                if issubclass(category, ConvergenceWarning):
+                    records.append(f"component {c}: {' '.join(message.split())}")
                 else:  # not ours to swallow
-                    warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+                    warnings.warn(message, category, stacklevel=2)
             kp = gp.kernel_.k1 if self.white_noise else gp.kernel_
             const[c] = kp.k1.constant_value
             lscale[c] = np.broadcast_to(kp.k2.length_scale, (d,))

@@ -93,7 +93,7 @@ def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
         setup.parameter_names, setup.bounds, kernel=e["kernel"], n_restarts=e["n_restarts"],
         n_pca=e["n_pca"] or None, random_state=setup.cfg["design"]["seed"], units=setup.units,
         output_names=setup.spec.output_names(), scaled_outputs=scaled,
-    ).fit(X, Y, y_var=V)
+    ).fit(X, Y, y_var=V, n_jobs=args.jobs)
     fit_s = time.perf_counter() - t0
     meta = setup.metadata()
     meta["provenance"] = {
