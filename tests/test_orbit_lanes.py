@@ -186,3 +186,10 @@ def test_generated_lane_kernels_are_up_to_date():
     gen = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(gen)
     assert Path(orbit_lanes.__file__).read_text() == gen.render()
+
+
+def test_group_size_is_whole_lanes_and_bounded():
+    for n in (1, 7, 8, 20, 100, 513, 2000, 10**6):
+        g = orbits.group_size(n)
+        assert g % W == 0 and W <= g <= orbits._GROUP
+    assert orbits.group_size(10**6) == orbits._GROUP

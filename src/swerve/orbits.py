@@ -682,9 +682,17 @@ def _integrate_group(kinds, pars, aux, i0, i1, y0, t_end, t_out, order, n_out, r
                     _finish(kinds, pars, aux, st, l, LF, LI, y_final, res_f, res_i)
 
 
+def group_size(n: int) -> int:
+    """Orbits per work unit of :func:`integrate_batch_kernel` for a batch of ``n``: ``_GROUP``,
+    fewer for small batches (at least four units per thread), a whole number of lanes."""
+    threads = nb.get_num_threads()
+    per = -(-n // (4 * threads))
+    return int(min(_GROUP, max(W, -(-per // W) * W)))
+
+
 @nb.njit(parallel=True, **_FLAGS)
 def integrate_batch_kernel(kinds, pars, aux, y0, t_end, t_out, order, n_out, r_stop,
-                           rtol, atol, max_steps, pos_out, vel_out, y_final, res_f, res_i):
+                           rtol, atol, max_steps, pos_out, vel_out, y_final, res_f, res_i, group):
     """Integrate a batch of orbits in parallel (compiled entry point for other modules).
 
     Parameters (internal units: kpc, km/s, T = kpc/(km/s)), with a leading orbit axis
@@ -712,16 +720,18 @@ def integrate_batch_kernel(kinds, pars, aux, y0, t_end, t_out, order, n_out, r_s
         t_final, |E - E0| / |Phi(x0)|, r_max, r_min, t_r_min.
     res_i : int64 array (n, 4)
         status, accepted steps, rejected steps, force evaluations.
+    group : int
+        Orbits per work unit of the parallel loop (:func:`group_size`).
 
-    Orbits are taken in groups of ``_GROUP`` per thread and stepped eight at a time (one SIMD
+    Orbits are taken in groups of up to ``_GROUP`` per thread and stepped eight at a time (one SIMD
     lane each, :mod:`swerve.orbit_lanes`); every orbit keeps its own step size, so its result
     does not depend on which orbits share its group.
     """
     n = y0.shape[0]
-    n_groups = (n + _GROUP - 1) // _GROUP
+    n_groups = (n + group - 1) // group
     for g in nb.prange(n_groups):
-        i0 = g * _GROUP
-        _integrate_group(kinds, pars, aux, i0, min(n, i0 + _GROUP), y0, t_end, t_out, order,
+        i0 = g * group
+        _integrate_group(kinds, pars, aux, i0, min(n, i0 + group), y0, t_end, t_out, order,
                          n_out, r_stop, rtol, atol, max_steps, pos_out, vel_out, y_final,
                          res_f, res_i)
 
@@ -927,7 +937,7 @@ def integrate_arrays(kinds, pars, aux, pos0, vel0, t_end, t_out=None, *, r_stop=
                 np.asarray(kinds, dtype=np.int64), np.ascontiguousarray(pars, dtype=float),
                 np.ascontiguousarray(aux, dtype=float), y0, t_end_int, t_out_int, order, n_out,
                 np.ascontiguousarray(r_stop_arr), rtol, atol, int(max_steps), pos_out, vel_out,
-                y_final, res_f, res_i)
+                y_final, res_f, res_i, group_size(n))
     return OrbitResult(
         t_final=units.internal_to_myr(res_f[:, _F_T]),
         pos=y_final[:, :3],
