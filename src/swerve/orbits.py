@@ -9,9 +9,10 @@ written with :mod:`swerve.simd`): the force and the stepper's arithmetic run as 
 vector instructions, while each orbit keeps its own time, step size, accept/reject decision,
 events and outputs (scalar bookkeeping per lane), and a lane takes the next orbit of its group
 as soon as its own is over.  An orbit's result is therefore bit-for-bit the same whichever
-orbits share its group (``tests/test_orbit_lanes.py``).  On the standard HVS workload this made
-whole orbits 1.5x (density-flattened halo, with its 21-node fast form) to 1.9x faster than one
-orbit at a time (``benchmarks/RESULTS.md``).
+orbits share its group (``tests/test_orbit_lanes.py``).  On the standard HVS workload, one core,
+this made whole orbits 1.75-2.0x faster than one orbit at a time in the potential-flattened halo
+and 1.9-2.3x in the density-flattened one (with its fast form cut from 29 to 21 nodes at the same
+time), measured side by side (``benchmarks/RESULTS.md``).
 
 Method
 ------
