@@ -95,6 +95,14 @@ class Lanes:
 # --- the Galaxy force, per component kind (pars row p, positions X, Y, Z) ------------------
 _NFW_SERIES = "(0.5 + u * (-2.0 / 3.0 + u * (0.75 + u * (-0.8 + u * (5.0 / 6.0 + u * (-6.0 / 7.0))))))"
 
+
+def _nfw_g(m, rs):
+    """-(1/m) dPhi/dm / (G M) of the NFW potential at radius ``m`` (u = m / rs), with the series
+    below u = 1e-3 (swerve.galaxy.kernels._nfw_dphi_dm_over_m)."""
+    return (f"({_NFW_SERIES} / ({rs} * {rs} * {m}) if u < 1e-3 "
+            f"else (math.log1p(u) / ({m} * {m}) - 1.0 / ({m} * ({rs} + {m}))) / {m})")
+
+
 FORCE = {
     "KIND_POINT_MASS": """
 r2 = max(X * X + Y * Y + Z * Z, _TINY2)
@@ -123,7 +131,7 @@ az += f * Z * q / zeta
     "KIND_NFW_POTENTIAL_FLAT": f"""
 m = max(math.sqrt(X * X + Y * Y * p[2] + Z * Z * p[3]), _TINY)
 u = m / p[1]
-g = -p[0] * ({_NFW_SERIES} / (p[1] * p[1] * m) if u < 1e-3 else (math.log1p(u) / (m * m) - 1.0 / (m * (p[1] + m))) / m)
+g = -p[0] * {_nfw_g("m", "p[1]")}
 ax += g * X
 ay += g * Y * p[2]
 az += g * Z * p[3]
@@ -133,7 +141,7 @@ az += g * Z * p[3]
 NFW_DENSITY_SPHERICAL = f"""
 r = max(math.sqrt(X * X + Y * Y + Z * Z), _TINY)
 u = r / p[1]
-g = -p[0] * ({_NFW_SERIES} / (p[1] * p[1] * r) if u < 1e-3 else (math.log1p(u) / (r * r) - 1.0 / (r * (p[1] + r))) / r)
+g = -p[0] * {_nfw_g("r", "p[1]")}
 ax += g * X
 ay += g * Y
 az += g * Z
@@ -142,7 +150,7 @@ NFW_DENSITY_HEAD = f"""
 r = max(math.sqrt(X * X + Y * Y + Z * Z), _TINY)
 u = r / p[3]
 b = 1.0 / (1.0 + u)
-g = -p[0] * ({_NFW_SERIES} / (p[3] * p[3] * r) if u < 1e-3 else (math.log1p(u) / (r * r) - 1.0 / (r * (p[3] + r))) / r) - 2.0 * p[0] * p[5] / (p[3] * p[3]) * b * b * b / r
+g = -p[0] * {_nfw_g("r", "p[3]")} - 2.0 * p[0] * p[5] / (p[3] * p[3]) * b * b * b / r
 x2 = X * X * (p[4] * p[4])
 y2 = Y * Y * (p[4] * p[4])
 z2 = Z * Z * (p[4] * p[4])

@@ -207,9 +207,10 @@ def folded_components(pos, vel) -> np.ndarray:
 def _moment_sums(cell, comps, w, n_cells):
     """One pass over the samples: per cell W, sum w v (3), sum w v v^T (6; pairs rr, tt, pp, rt,
     rp, tp).  Strict arithmetic (no fused multiply-add) in sample order, so every sum equals
-    ``np.bincount(cell, weights=w * v_a * v_b)`` bit for bit (tests/test_summaries.py); ten
-    bincounts with their temporaries measured several times slower, and the training stage
-    calls this 21 times per launch point (bootstrap and replicates)."""
+    ``np.bincount(cell, weights=w * v_a * v_b)`` bit for bit (tests/test_summaries.py).  The
+    training stage calls it 21 times per launch point (summary, bootstrap, replicates); replacing
+    ten bincounts and their temporaries by this pass made a design point 2.8x faster
+    (benchmarks/RESULTS.md, "Training cost")."""
     out = np.zeros((n_cells, 10))
     for i in range(cell.shape[0]):
         c = cell[i]

@@ -60,7 +60,8 @@ def _node_sums(aux, j0, n, x2, y2, z2):
     A function of its own, compiled with ``fastmath`` (reassociation lets the compiler
     vectorise the sums over nodes, several square roots and divisions per instruction) and
     ``error_model="numpy"`` (numba's default Python error model checks every division for
-    zero, which keeps the loop scalar: 3.5x slower measured), called, not inlined, from the
+    zero, which kept the loop scalar: ``inspect_asm`` showed ``vsqrtsd``/``vdivsd`` only; with
+    the numpy model, ``vsqrtpd``/``vdivpd`` on zmm registers), called, not inlined, from the
     strict Galaxy kernel.  The orbit engine uses the eight-lane form of this loop
     (:mod:`swerve.orbit_lanes`); this one serves point evaluations (``Galaxy.acceleration``)
     and the engine's event refinement."""
