@@ -361,15 +361,12 @@ def test_fast_exp_matches_numpy():
 
 
 def test_wide_vector_attribute_reaches_the_compiled_code():
-    """``prefer_512`` in a ``prange`` body shaped like the kernels' (a task loop around an inner
-    loop): on a CPU with AVX-512 the inner loop then runs in 512-bit registers, so that a change in
-    numba or llvmlite that drops the attribute shows here rather than as a silent loss of speed;
-    the results are the same. Without the attribute LLVM picks the width by the CPU's tuning:
-    256 bits on Intel's AVX-512 cores and AMD's Zen 4 (there the attribute is what gives 512),
-    512 on Zen 5 (``znver5``; there it changes nothing)."""
-    import re
-
-    import llvmlite.binding as llvm
+    """``prefer_512`` sets LLVM's ``"prefer-vector-width"="512"`` attribute on the compiled
+    function it is called in, and changes no result: the same loop with and without it, inside
+    a ``prange`` body shaped like the kernels' (a task loop around an inner loop), agrees to the
+    last bit with numpy's ``exp``. Which vector width LLVM then picks is the CPU's tuning (256 or
+    512 bits, by model), not something a test may assert: ``python
+    benchmarks/vector_width.py`` reports it for the machine at hand."""
     import numba as nb
 
     from swerve.fastmath import fast_exp, prefer_512
@@ -385,22 +382,26 @@ def test_wide_vector_attribute_reaches_the_compiled_code():
             for i in range(t * 256, (t + 1) * 256):
                 out[i] = fast_exp(-x[i]) * x[i]
 
+    def serial(x, out):
+        prefer_512()
+        for i in range(x.size):
+            out[i] = fast_exp(-x[i]) * x[i]
+
     fw = nb.njit(parallel=True, fastmath=True)(wide)  # not cached: the code can be inspected
     fp = nb.njit(parallel=True, fastmath=True)(plain)
+    fs = nb.njit(fastmath=True)(serial)
     x = np.linspace(0.0, 50.0, 1024)
-    a, b = np.empty_like(x), np.empty_like(x)
+    a, b, c = np.empty_like(x), np.empty_like(x), np.empty_like(x)
     fw(x, a)
     fp(x, b)
+    fs(x, c)
     np.testing.assert_allclose(a, x * np.exp(-x), rtol=1e-13, atol=0)
     np.testing.assert_allclose(a, b, rtol=1e-15, atol=0)
-    if "+avx512f" in llvm.get_host_cpu_features().flatten().split(","):
-        def zmm_fma(f):
-            return len(re.findall(r"vfmadd\w+\s[^\n]*zmm", "".join(f.inspect_asm().values())))
-
-        assert zmm_fma(fw) > 0
-        if llvm.get_host_cpu_name() in ("znver4", "skylake-avx512", "cascadelake", "icelake-server",
-                                        "sapphirerapids"):  # LLVM's tuning prefers 256 bits there
-            assert zmm_fma(fp) == 0
+    np.testing.assert_allclose(c, a, rtol=1e-15, atol=0)
+    # the attribute reaches the function's LLVM IR (a parfor body is a separate library whose IR
+    # numba does not expose, hence the serial function)
+    ir = "".join(fs.inspect_llvm().values())
+    assert '"prefer-vector-width"="512"' in ir
 
 
 def test_sampled_posterior_matches_analytic(rng):

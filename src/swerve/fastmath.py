@@ -68,14 +68,15 @@ _WIDE_VECTORS = '"prefer-vector-width"="512"'
 def prefer_512(typingctx):
     """Let LLVM vectorise the compiled function this is called in with 512-bit registers.
 
-    On CPUs with AVX-512, LLVM uses 256-bit vectors unless told otherwise (512-bit instructions
+    On some CPUs with AVX-512 (Intel's server cores), LLVM uses 256-bit vectors unless told otherwise (512-bit instructions
     lowered the clock of early AVX-512 parts); numba can only change that for a whole process
     (``NUMBA_CPU_FEATURES``), and that made the orbit engine slower here (14,300 -> 11,000
     orbits/s on one core, benchmarks/RESULTS.md) while the likelihood kernel ran 1.3x faster.
     This sets the attribute on the one function instead (call it first thing in a ``prange``
     body: the body is compiled as a function of its own). No effect on CPUs without AVX-512; no change in the arithmetic, only
-    in how many lanes run at once. ``tests/test_likelihood.py`` checks that the compiled loop
-    then uses 512-bit registers."""
+    in how many lanes run at once. ``tests/test_likelihood.py`` checks that the attribute reaches
+    the compiled function and changes no result; ``benchmarks/vector_width.py`` shows which width
+    LLVM then picks on the CPU at hand (its tuning, so never asserted in a test)."""
     sig = types.none()
 
     def codegen(context, builder, signature, args):
