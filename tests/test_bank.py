@@ -8,7 +8,14 @@ import pytest
 from swerve import bank as B
 from swerve.frames import spherical_components
 from swerve.galaxy import Galaxy
-from swerve.launch import BoundedPowerLawSpeed, HillsLaunch, main_sequence_lifetime
+from swerve.launch import (
+    BoundedPowerLawSpeed,
+    HillsAliveTable,
+    HillsLaunch,
+    TabulatedSpeedDensity,
+    TrajectoryWeights,
+    main_sequence_lifetime,
+)
 from swerve.orbits import integrate
 
 KW = dict(t_max=150.0, dt=2.0, r_min_store=10.0, r_max=60.0)
@@ -154,3 +161,46 @@ def test_reflection_symmetry_check():
     assert B.check_reflection_symmetry(Galaxy.default(q_y=1.1, q_z=0.8))
     with pytest.raises(ValueError, match="directions"):
         B.build_bank(Galaxy.default(), 8, 1, directions="cube")
+
+
+def test_tabulated_density_equal_to_the_proposal_gives_uniform_weights(bank_sph):
+    """A table flat per dex on the proposal's range is the proposal: p/q = 1, every w = dt / N."""
+    edges = np.linspace(math.log10(500.0), math.log10(5000.0), 11)
+    tab = TabulatedSpeedDensity(edges, np.ones(10))
+    w, info = B.sample_weights(bank_sph, tab)
+    assert np.allclose(w, bank_sph.dt / bank_sph.n_orbits, rtol=1e-9, atol=0)
+    assert info["missing_fraction"] < 1e-3 and np.allclose(info["orbit_weight"], bank_sph.dt / bank_sph.n_orbits)
+
+
+class _ShortLived:
+    """A launch model written outside swerve (no edit of swerve.bank): the proposal's own
+    log-flat speeds, stars visible for their first 40 Myr; ``missing`` declared by hand."""
+
+    def __init__(self, proposal, missing=0.0):
+        self.proposal, self.missing = proposal, missing
+
+    def to_dict(self):
+        return {"model": "short_lived (test)"}
+
+    def trajectory_weights(self, samples, *, mass_range=None, table_samples=0, table_seed=0):
+        s = samples
+        w = (self.proposal.pdf(s.v_launch) * s.inv_q)[s.orbit] * (s.t < min(40.0, s.t_cut))
+        return TrajectoryWeights(w, self.missing, {"lifetime_myr": 40.0}, "short-lived stars: bank too small")
+
+
+def test_a_new_launch_model_plugs_in_through_its_own_method(bank_sph):
+    b = bank_sph
+    w, info = B.sample_weights(b, _ShortLived(b.proposal))
+    # p/q = 1 below 40 Myr, 0 after: w = dt / N there (the module docstring's formula)
+    assert np.allclose(w[b.t_flight < 40.0], b.dt / b.n_orbits, rtol=1e-9, atol=0)
+    assert np.all(w[b.t_flight >= 40.0] == 0)
+    assert info["lifetime_myr"] == 40.0 and info["launch"] == {"model": "short_lived (test)"}
+    assert info["ess"] == pytest.approx(np.sum(b.t_flight < 40.0))
+    with pytest.raises(B.BankCoverageError, match="short-lived stars: bank too small"):
+        B.sample_weights(b, _ShortLived(b.proposal, missing=0.5))
+    with pytest.raises(ValueError, match="trajectory_weights method"):
+        B.sample_weights(b, {"model": "hills"})
+
+
+def test_hills_alive_table_lives_with_the_launch_models():
+    assert B.HillsAliveTable is HillsAliveTable and B.hills_alive_table.__module__ == "swerve.launch"

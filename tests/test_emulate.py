@@ -21,8 +21,10 @@ from swerve.emulate import (
     content_hash,
     describe,
     load,
+    register,
     save,
 )
+from swerve.emulate.kernels import cross_kernel
 
 NAMES = ["q_y", "q_z", "a", "b"]
 BOUNDS = np.array([[0.7, 1.3], [0.7, 1.3], [0.0, 1.5], [0.0, 1.5]])
@@ -144,10 +146,8 @@ def test_fast_predict_equals_sklearn(which, request, rng):
     # sum_j |k_j alpha_j|, not to the result: asserted at 1e-14 of that (measured 0.5-6e-16 on
     # these three emulators).
     mean_only = em.predict(th)
-    from swerve.emulate import _cross_kernel
-
     xs = np.ascontiguousarray(x[None, :, :] / em.length_scale_[:, None, :])
-    K = _cross_kernel(xs, em._XsT, em.constant_, em._code)
+    K = cross_kernel(xs, em._XsT, em.constant_, em._code)
     cond = np.abs(K * em.alpha_[:, None, :]).sum(axis=2).T  # (q, G)
     if em.components_ is not None:
         cond = cond @ np.abs(em.components_ * em.score_scale_[:, None])
@@ -524,7 +524,8 @@ def test_scaled_outputs_vanish_exactly_at_one_and_follow_the_analytic_response(e
     np.testing.assert_allclose(mean[off], truth, atol=0.02)
     # the unscaled GP of the same data: a clearly non-zero value at q_y = 1
     theta = em_scaled.theta_train_
-    plain = GPEmulator(NAMES, BOUNDS, kernel="rbf", n_restarts=0, random_state=5).fit(theta, em_scaled.y_train_[:, [0, 2]])
+    plain = GPEmulator(NAMES, BOUNDS, kernel="rbf", n_restarts=0, random_state=5)
+    plain.fit(theta, em_scaled.y_train_[:, [0, 2]])
     assert np.max(np.abs(plain.predict(th[:50])[:, 0])) > 100 * np.max(np.abs(mean[:50, 0]))
 
 
@@ -536,7 +537,8 @@ def test_scaled_outputs_std_cov_and_file_round_trip(em_scaled, tmp_path, rng):
     np.testing.assert_allclose(np.sqrt(np.diagonal(cov, axis1=1, axis2=2)), sd, rtol=1e-10)
     em2 = load(save(em_scaled, tmp_path / "scaled"))
     assert em2.scaled_outputs == SCALED
-    assert "scaled outputs: 1 linear and 1 log outputs emulated divided by s = 1/q_y^2 - 1" in describe(tmp_path / "scaled")
+    text = describe(tmp_path / "scaled")
+    assert "scaled outputs: 1 linear and 1 log outputs emulated divided by s = 1/q_y^2 - 1" in text
     for kw in ({}, {"return_std": True}, {"return_cov": True}):
         a, b = em_scaled.predict(th, **kw), em2.predict(th, **kw)
         for u, v in zip(a if isinstance(a, tuple) else (a,), b if isinstance(b, tuple) else (b,)):
@@ -553,3 +555,27 @@ def test_bad_scaled_outputs_are_refused(so, match):
     theta = design(8)
     with pytest.raises(ValueError, match=match):
         GPEmulator(NAMES, BOUNDS, n_restarts=0, scaled_outputs=so).fit(theta, analytic(theta))
+
+
+def test_package_keeps_the_old_import_names():
+    """emulate.py became a package (kernels, gp, files): the names imported from
+    ``swerve.emulate`` before the split are the same objects."""
+    import swerve.emulate as E
+    from swerve.emulate import files, gp, kernels
+
+    assert E._cross_kernel is kernels.cross_kernel
+    assert E.SCALE_FLOOR is gp.SCALE_FLOOR and E.JITTER is gp.JITTER
+    assert E.load is files.load and E.EmulatorFileError is files.EmulatorFileError
+    assert files._TYPES[GPEmulator.emulator_type] is GPEmulator
+
+
+def test_file_format_refuses_unregistered_and_clashing_types(tmp_path):
+    class Other:
+        emulator_type = GPEmulator.emulator_type  # already taken
+
+    with pytest.raises(ValueError, match="already taken by GPEmulator"):
+        register(Other)
+    assert register(GPEmulator) is GPEmulator  # registering again is harmless
+    with pytest.raises(ValueError, match="registered type"):
+        save(object(), tmp_path / "nothing")
+    assert not (tmp_path / "nothing").exists()

@@ -2,6 +2,7 @@
 
 import json
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -11,6 +12,7 @@ from scipy import integrate, optimize, stats
 
 from swerve import launch as L
 from swerve.launch import (
+    BankSamples,
     BoundedPowerLawSpeed,
     HillsLaunch,
     TabulatedSpeedDensity,
@@ -311,3 +313,22 @@ def test_flight_time_weights():
     assert stats.kstest(t_eject[alive] / 312.5, "uniform").pvalue > 1e-3
     with pytest.raises(ValueError, match="t_max"):
         flight_time_weight(1.0, 3.0, t_max=-5.0)
+
+
+def test_bounded_power_law_weights_and_missing_fraction_are_analytic():
+    """Uniform p(v) on [800, 2500] km/s against a bank covering [1000, 2000] km/s that every
+    speed above 900 km/s reaches: missing = (2500 - 2000 + 1000 - 900) / 1700; the weights are
+    p(v) inv_q, one value per orbit, cut at t_cut."""
+    v = np.array([850.0, 1200.0, 1900.0, 2600.0])
+    s = BankSamples(v_launch=v, inv_q=np.array([1.0, 2.0, 3.0, 4.0]), orbit=np.array([0, 1, 1, 2, 3]),
+                    t=np.array([5.0, 5.0, 50.0, 5.0, 5.0]), t_cut=40.0, t_max=100.0,
+                    v_lo=1000.0, v_hi=2000.0, v_reach=900.0, galaxy={})
+    res = BoundedPowerLawSpeed(800.0, 2500.0, 0.0).trajectory_weights(s)
+    assert res.missing_fraction == pytest.approx(600.0 / 1700.0, rel=1e-12)
+    np.testing.assert_allclose(res.weights, np.array([1.0, 2.0, 0.0, 3.0, 0.0]) / 1700.0, rtol=1e-12, atol=0)
+    assert "v_max = 2500" in res.coverage_message and "orbit_weight" not in res.info
+    # no flight-time cut: every sample of an orbit has the orbit's weight, recorded per orbit
+    res = BoundedPowerLawSpeed(800.0, 2500.0, 0.0).trajectory_weights(replace(s, t_cut=100.0))
+    np.testing.assert_allclose(res.info["orbit_weight"], np.array([1.0, 2.0, 3.0, 0.0]) / 1700.0, rtol=1e-12)
+    with pytest.raises(ValueError, match="mass_range"):
+        BoundedPowerLawSpeed().trajectory_weights(s, mass_range=(2.0, 3.0))

@@ -50,7 +50,10 @@ Sample ``j`` (orbit ``o`` launched at speed ``v_o``, flight time ``t_j``) gets t
 
 so that ``Γ Σ_j w_j [j in a region]`` is the expected number of stars in that region for an
 ejection rate Γ (stars per Myr; the octant bank counts one octant's launches as the whole
-sky, since every octant holds the same stars). ``alive`` is ``t < T_max`` (constant ejection
+sky, since every octant holds the same stars). The bank supplies ``Δt / (N_orbits q(v_o))``
+and its coverage; the launch model supplies the rest through its ``trajectory_weights``
+method (:class:`swerve.launch.BankSamples` in, :class:`swerve.launch.TrajectoryWeights` out),
+so a new launch model needs no change here. ``alive`` is ``t < T_max`` (constant ejection
 rate, flight times uniform up to the longest flight time of interest ``T_max ≤ t_max``) for
 launch models that only give a speed (:class:`~swerve.launch.BoundedPowerLawSpeed`,
 :class:`~swerve.launch.TabulatedSpeedDensity`). For :class:`~swerve.launch.HillsLaunch` the
@@ -58,8 +61,9 @@ ejected star's mass sets its lifetime (its ejection speed ``v_ej`` is used as th
 at ``r0``, common practice), and mass and speed are correlated, so the product
 ``p_launch(v) × alive`` is replaced by the joint density
 ``p(v, alive at t) = p(v) P(t_MS(m) > t | v)``, tabulated from a Monte Carlo of
-``HillsLaunch.sample`` as a 2-D table in (log10 v, t) (:class:`HillsAliveTable`: a histogram in
-log10 v, the survival fraction at a grid of flight times, linear in t between them).
+``HillsLaunch.sample`` as a 2-D table in (log10 v, t) (:class:`swerve.launch.HillsAliveTable`,
+also importable from here: a histogram in log10 v, the survival fraction at a grid of flight
+times, linear in t between them).
 
 The weights' effective sample size ``(Σw)² / Σw²`` is reported by
 :func:`effective_sample_size`; the population module checks it after selection.
@@ -74,16 +78,14 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import qmc
 
 from . import __version__
-
-
-def _chmod_default(path):
-    """Give a temp file (mkstemp: mode 0600) the permissions of a normally created file."""
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(path, 0o666 & ~mask)
-
+from .fileio import atomic_path
+from .galaxy import Galaxy
+from .launch import BankSamples, HillsAliveTable, hills_alive_table
+from .orbits import integrate, status_names
+from .units import positive_float
 
 __all__ = [
     "BANK_FORMAT_VERSION",
@@ -299,8 +301,6 @@ class TrajectoryBank:
 
 
 def _galaxy_of(galaxy):
-    from .galaxy import Galaxy
-
     if isinstance(galaxy, dict):
         return Galaxy.from_dict(galaxy)
     if not hasattr(galaxy, "kernel_args"):
@@ -353,14 +353,10 @@ def reach_speed(galaxy, r0: float, r: float) -> float:
 
 
 def _check_positive(name, value, unit):
-    from .units import positive_float
-
     return positive_float(name, value, unit)
 
 
 def _sobol(n, seed):
-    from scipy.stats import qmc
-
     eng = qmc.Sobol(d=4, scramble=True, seed=np.random.default_rng(seed))
     m = int(math.ceil(math.log2(max(n, 2))))
     return eng.random_base2(m)[:n]  # a power-of-two prefix keeps the balance properties
@@ -415,8 +411,6 @@ def build_bank(galaxy, n_orbits: int, seed: int, *, t_max: float = 300.0, dt: fl
     -------
     TrajectoryBank
     """
-    from .orbits import integrate
-
     g = _galaxy_of(galaxy)
     if isinstance(n_orbits, bool) or not isinstance(n_orbits, (int, np.integer)) or n_orbits < 1:
         raise ValueError(f"n_orbits: expected a positive integer, got {n_orbits!r}")
@@ -507,8 +501,6 @@ def build_bank(galaxy, n_orbits: int, seed: int, *, t_max: float = 300.0, dt: fl
         "stored_dtype": "float32",
     }
     if n_failed:
-        from .orbits import status_names
-
         info["failures"] = {status_names.get(int(c), str(c)): int(np.sum(status == c))
                             for c in np.unique(status[status > 1])}
     bank = TrajectoryBank(
@@ -533,18 +525,8 @@ def save_bank(bank: TrajectoryBank, path) -> None:
         raise ValueError(f"path: expected a file name ending in .npz, got {path!r}")
     meta = json.dumps(bank.metadata(), allow_nan=False)
     arrays = {a: getattr(bank, a) for a in _SAMPLE_ARRAYS + _ORBIT_ARRAYS}
-    folder = os.path.dirname(os.path.abspath(path))
-    import tempfile
-
-    fd, tmp = tempfile.mkstemp(prefix=".bank.", suffix=".npz", dir=folder)
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         np.savez(tmp, metadata=np.array(meta), **arrays)
-        _chmod_default(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 def load_bank(path) -> TrajectoryBank:
@@ -582,116 +564,11 @@ def load_bank(path) -> TrajectoryBank:
 # reweighting
 
 
-@dataclass(frozen=True, eq=False)
-class HillsAliveTable:
-    """Joint density of launch speed and survival for the Hills model, tabulated.
-
-    ``value[b, g]`` is the density per dex of launch speed in bin ``b`` of log10 v of stars that
-    are still on the main sequence at flight time ``t_grid[g]``; linear in t between grid points.
-    Normalised per ejection (of a star in ``mass_range`` when one is given).
-    """
-
-    log10_edges: np.ndarray
-    t_grid: np.ndarray
-    value: np.ndarray
-    meta: dict
-
-    def __call__(self, v, t):
-        """Density per km/s of (launch speed ``v``, alive at flight time ``t`` [Myr])."""
-        v = np.asarray(v, dtype=float)
-        t = np.asarray(t, dtype=float)
-        x = np.log10(np.maximum(v, 1e-300))
-        b = np.searchsorted(self.log10_edges, x, side="right") - 1
-        inside = (b >= 0) & (b < self.value.shape[0])
-        b = np.clip(b, 0, self.value.shape[0] - 1)
-        tg = self.t_grid
-        fi = np.clip((t - tg[0]) / (tg[1] - tg[0]), 0.0, tg.size - 1 - 1e-12)
-        i = fi.astype(np.int64)
-        f = fi - i
-        val = (1.0 - f) * self.value[b, i] + f * self.value[b, np.minimum(i + 1, tg.size - 1)]
-        return np.where(inside & (t >= tg[0]) & (t <= tg[-1]), val / (v * math.log(10.0)), 0.0)
-
-
-def hills_alive_table(launch, m_bh: float, t_max: float, *, mass_range=None, n_samples: int = 400_000,
-                      seed: int = 20100101, n_bins: int = 120, log10_v_range=(1.5, 4.5),
-                      n_t: int = 301) -> HillsAliveTable:
-    """Monte-Carlo table of ``p(v, alive at t)`` for a :class:`~swerve.launch.HillsLaunch`.
-
-    Parameters
-    ----------
-    launch : HillsLaunch
-    m_bh : float
-        Black-hole mass, Msun.
-    t_max : float
-        Largest flight time tabulated, Myr.
-    mass_range : (float, float), optional
-        Keep only ejected stars with mass in [lo, hi] Msun (normalised per such ejection).
-    n_samples, seed : int
-        Ejections simulated and the seed of their Generator (recorded).
-    n_bins, log10_v_range : int, (float, float)
-        Histogram in log10 v.
-    n_t : int
-        Flight-time grid points on [0, t_max].
-    """
-    from .launch import main_sequence_lifetime
-
-    s = launch.sample(int(n_samples), np.random.default_rng(seed), m_bh)
-    keep = np.ones(s["mass"].size, dtype=bool)
-    if mass_range is not None:
-        lo, hi = (float(x) for x in mass_range)
-        if not (0 <= lo < hi):
-            raise ValueError(f"mass_range: expected (low, high) in Msun with 0 <= low < high, got {mass_range!r}")
-        keep = (s["mass"] >= lo) & (s["mass"] <= hi)
-        if keep.sum() < 1000:
-            raise ValueError(f"mass_range: only {int(keep.sum())} of {n_samples} Hills ejections fall in "
-                             f"{list(mass_range)} Msun; widen the range or check the launch model's m_min, m_max")
-    x = np.log10(s["v_ej"][keep])
-    life = main_sequence_lifetime(s["mass"][keep])
-    edges = np.linspace(float(log10_v_range[0]), float(log10_v_range[1]), int(n_bins) + 1)
-    t_grid = np.linspace(0.0, float(t_max), int(n_t))
-    b = np.searchsorted(edges, x, side="right") - 1
-    ok = (b >= 0) & (b < n_bins)
-    # for each speed bin, the number of its stars alive at each grid time
-    order = np.argsort(life[ok])
-    b_ok, life_ok = b[ok][order], life[ok][order]
-    value = np.zeros((int(n_bins), t_grid.size))
-    for j in range(int(n_bins)):
-        lj = life_ok[b_ok == j]
-        value[j] = lj.size - np.searchsorted(lj, t_grid, side="right")
-    value /= keep.sum() * np.diff(edges)[:, None]
-    meta = {"model": launch.to_dict(), "m_bh": float(m_bh), "n_samples": int(n_samples), "seed": int(seed),
-            "mass_range": None if mass_range is None else [float(mass_range[0]), float(mass_range[1])],
-            "fraction_outside_table": float(1.0 - ok.sum() / keep.sum())}
-    return HillsAliveTable(edges, t_grid, value, meta)
-
-
 def effective_sample_size(w) -> float:
     """Kish's effective sample size ``(Σw)² / Σw²`` of weights ``w`` (0 when all vanish)."""
     w = np.asarray(w, dtype=float).ravel()
     s2 = float(np.dot(w, w))
     return float(np.sum(w)) ** 2 / s2 if s2 > 0 else 0.0
-
-
-def _m_bh_of(galaxy_dict) -> float:
-    for c in galaxy_dict.get("components", []):
-        if "m_bh" in c.get("params", {}):
-            return float(c["params"]["m_bh"])
-    raise ValueError("Hills launch: the bank's Galaxy has no central black hole (m_bh)")
-
-
-_HILLS_CACHE: dict = {}
-
-
-def _hills_table_cached(launch, m_bh, t_max, mass_range, n_samples, seed):
-    """:func:`hills_alive_table`, memoised on its (deterministic) inputs."""
-    key = json.dumps([launch.to_dict(), m_bh, t_max, None if mass_range is None else list(map(float, mass_range)),
-                      int(n_samples), int(seed)], sort_keys=True)
-    if key not in _HILLS_CACHE:
-        if len(_HILLS_CACHE) >= 32:
-            _HILLS_CACHE.pop(next(iter(_HILLS_CACHE)))
-        _HILLS_CACHE[key] = hills_alive_table(launch, m_bh, t_max, mass_range=mass_range,
-                                              n_samples=n_samples, seed=seed)
-    return _HILLS_CACHE[key]
 
 
 def sample_weights(bank: TrajectoryBank, launch, *, flight_time_max: float | None = None,
@@ -702,7 +579,8 @@ def sample_weights(bank: TrajectoryBank, launch, *, flight_time_max: float | Non
     Parameters
     ----------
     bank : TrajectoryBank
-    launch : HillsLaunch, BoundedPowerLawSpeed or TabulatedSpeedDensity
+    launch : HillsLaunch, BoundedPowerLawSpeed, TabulatedSpeedDensity
+        Or any launch model with a ``trajectory_weights`` method (:mod:`swerve.launch`).
     flight_time_max : float, optional
         Longest flight time of interest, Myr (default: the bank's ``t_max``; must not exceed it).
     mass_range : (float, float), optional
@@ -712,7 +590,8 @@ def sample_weights(bank: TrajectoryBank, launch, *, flight_time_max: float | Non
         proposal, or between the proposal's ``v_lo`` and the lowest speed that reaches the
         region); more raises :class:`BankCoverageError`.
     hills_samples, hills_seed : int
-        Monte Carlo of the Hills table (:func:`hills_alive_table`; memoised).
+        Monte Carlo of the Hills table (:func:`swerve.launch.hills_alive_table`; memoised),
+        passed on as the launch model's ``table_samples`` and ``table_seed``.
     samples : int array or (orbit, t_flight) tuple of arrays, optional
         Indices of the stored samples wanted (default: all), or their orbit indices and flight
         times directly. The speed factor is computed once per orbit and gathered, so the cost
@@ -730,14 +609,15 @@ def sample_weights(bank: TrajectoryBank, launch, *, flight_time_max: float | Non
         weight (speed-only models, no flight-time cut below ``t_max``), ``orbit_weight``
         (n_orbits,).
     """
-    from .launch import BoundedPowerLawSpeed, HillsLaunch, TabulatedSpeedDensity
-
     t_cut = bank.t_max if flight_time_max is None else float(flight_time_max)
     if not (math.isfinite(t_cut) and t_cut > 0):
         raise ValueError(f"flight_time_max: expected a positive time in Myr, got {flight_time_max!r}")
     if t_cut > bank.t_max * (1 + 1e-9):
         raise BankCoverageError(f"flight_time_max = {t_cut:g} Myr exceeds the bank's t_max = {bank.t_max:g} Myr; "
                                 "build a bank with a longer t_max")
+    if not callable(getattr(launch, "trajectory_weights", None)):
+        raise ValueError("launch: expected a launch model with a trajectory_weights method (HillsLaunch, "
+                         f"BoundedPowerLawSpeed, TabulatedSpeedDensity), got {type(launch).__name__}")
     if samples is not None and isinstance(samples, tuple):
         orbit, t = samples  # precomputed (orbit index, flight time) of the wanted samples
     else:
@@ -748,62 +628,17 @@ def sample_weights(bank: TrajectoryBank, launch, *, flight_time_max: float | Non
     inv_q = np.where(q_o > 0, 1.0 / np.where(q_o > 0, q_o, 1.0), 0.0) * (bank.dt / bank.n_orbits)
     v_reach = float(bank.info.get("reach_speed", 0.0))
     info = {"launch": launch.to_dict(), "flight_time_max": t_cut}
-    if isinstance(launch, HillsLaunch):
-        if mass_range is not None:
-            info["mass_range"] = [float(mass_range[0]), float(mass_range[1])]
-        table = _hills_table_cached(launch, _m_bh_of(bank.galaxy), bank.t_max, mass_range,
-                                    hills_samples, hills_seed)
-        centres = 0.5 * (table.log10_edges[1:] + table.log10_edges[:-1])
-        mass_per_bin = table.value[:, 0] * np.diff(table.log10_edges)
-        outside = (10 ** centres > prop.v_hi) | ((10 ** centres < prop.v_lo) & (10 ** centres >= v_reach))
-        missing = float(np.sum(mass_per_bin[outside]) + table.meta["fraction_outside_table"])
-        info["hills_table"] = table.meta
-        # per orbit: speed bin and 1 / (q(v) v ln 10); per sample: linear interpolation in t
-        v_o = bank.v_launch
-        b_o = np.searchsorted(table.log10_edges, np.log10(v_o), side="right") - 1
-        in_o = (b_o >= 0) & (b_o < table.value.shape[0])
-        b_o = np.clip(b_o, 0, table.value.shape[0] - 1)
-        f_o = np.where(in_o, inv_q / (v_o * math.log(10.0)), 0.0)
-        tg = table.t_grid
-        fi = np.clip((t - tg[0]) / (tg[1] - tg[0]), 0.0, tg.size - 1 - 1e-9)
-        i = fi.astype(np.int64)
-        f = fi - i
-        b = b_o[orbit]
-        val = (1.0 - f) * table.value[b, i] + f * table.value[b, np.minimum(i + 1, tg.size - 1)]
-        w = val * f_o[orbit] * (t < t_cut)
-    elif isinstance(launch, (BoundedPowerLawSpeed, TabulatedSpeedDensity)):
-        if mass_range is not None:
-            raise ValueError("mass_range: only meaningful for the Hills launch model")
-        if isinstance(launch, BoundedPowerLawSpeed):
-            hi = launch.v_max
-            missing = float(1.0 - launch.cdf(prop.v_hi))
-            if prop.v_lo > v_reach:
-                missing += float(launch.cdf(prop.v_lo) - launch.cdf(v_reach))
-            if hi > prop.v_hi and missing > max_missing:
-                raise BankCoverageError(
-                    f"launch v_max = {hi:g} km/s exceeds the bank's proposal range [{prop.v_lo:g}, {prop.v_hi:g}] km/s "
-                    f"({missing:.1%} of launches faster than the bank's orbits); build a bank with v_hi >= {hi:g}")
-        else:
-            vv = np.logspace(launch.log10_edges[0], launch.log10_edges[-1], 4001)
-            pv = launch.pdf(vv)
-            cdf = np.concatenate([[0.0], np.cumsum(0.5 * (pv[1:] + pv[:-1]) * np.diff(vv))])
-            cdf /= cdf[-1]
-            bad = (vv > prop.v_hi) | ((vv < prop.v_lo) & (vv >= v_reach))
-            missing = float(np.sum(np.diff(cdf)[bad[1:]]))
-        ratio_o = launch.pdf(bank.v_launch) * inv_q
-        w = ratio_o[orbit]
-        if t_cut < bank.t_max:  # every stored flight time is below t_max
-            w = w * (t < t_cut)
-        else:
-            info["orbit_weight"] = ratio_o  # every sample of orbit o has this weight
-    else:
-        raise ValueError(f"launch: expected a HillsLaunch, BoundedPowerLawSpeed or TabulatedSpeedDensity, "
-                         f"got {type(launch).__name__}")
+    view = BankSamples(v_launch=bank.v_launch, inv_q=inv_q, orbit=orbit, t=t, t_cut=t_cut, t_max=bank.t_max,
+                       v_lo=prop.v_lo, v_hi=prop.v_hi, v_reach=v_reach, galaxy=bank.galaxy)
+    res = launch.trajectory_weights(view, mass_range=mass_range, table_samples=hills_samples, table_seed=hills_seed)
+    w, missing = res.weights, res.missing_fraction
+    info.update(res.info)
     if missing > max_missing:
         raise BankCoverageError(
-            f"launch model puts {missing:.1%} of its launches at speeds the bank does not cover "
-            f"(bank proposal {prop.v_lo:g}-{prop.v_hi:g} km/s, reach speed {v_reach:.0f} km/s); "
-            f"build a bank with a wider proposal or raise max_missing")
+            res.coverage_message
+            or f"launch model puts {missing:.1%} of its launches at speeds the bank does not cover "
+               f"(bank proposal {prop.v_lo:g}-{prop.v_hi:g} km/s, reach speed {v_reach:.0f} km/s); "
+               f"build a bank with a wider proposal or raise max_missing")
     info["missing_fraction"] = missing
     if report_ess:
         info["ess"] = effective_sample_size(w)

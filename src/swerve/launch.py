@@ -16,6 +16,15 @@ Lifetimes: :func:`main_sequence_lifetime` (crude power law); with a constant eje
 flight times of stars of one mass are uniform up to their lifetime
 (:func:`flight_time_weight`).
 
+Weighting a trajectory bank: every launch model owns the weights of a bank's stored samples,
+its method ``trajectory_weights(samples, *, mass_range, table_samples, table_seed)``, which
+:func:`swerve.bank.sample_weights` calls (so a new launch model needs no change of the bank).
+It receives the samples as a :class:`BankSamples` (launch speeds, the proposal's ``Δt / (N q(v))``
+per orbit, flight times, the bank's coverage) and returns a :class:`TrajectoryWeights` (the
+weights, the launch probability the bank cannot represent, and what to record). Speed-only
+models weight by ``p(v) / q(v)`` and a flight-time cut; :class:`HillsLaunch` by the joint
+density of speed and survival, :class:`HillsAliveTable` (:func:`hills_alive_table`).
+
 Units: masses Msun, speeds km/s, times Myr, separations AU (``_rsun`` where marked). Every
 numeric model parameter is declared once as a :class:`swerve.galaxy.params.Parameter`
 (name, unit, default, allowed range, source); validation and ``to_dict`` come from there.
@@ -32,15 +41,17 @@ Hurley J. R., Pols O. R., Tout C. A., 2000, MNRAS 315, 543 (better lifetimes tha
 
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 from astropy import constants as const
 from astropy import units as u
 
 from .galaxy.params import Parameter
-from .units import G
+from .units import G, positive_float
 
 __all__ = [
     "IMF_NAMES",
@@ -60,6 +71,10 @@ __all__ = [
     "main_sequence_lifetime",
     "flight_time_weight",
     "launch_model_from_dict",
+    "BankSamples",
+    "TrajectoryWeights",
+    "HillsAliveTable",
+    "hills_alive_table",
     "AU_KPC",
     "RSUN_AU",
 ]
@@ -87,8 +102,6 @@ def _check_n(n):
 
 
 def _check_m_bh(m_bh):
-    from .units import positive_float
-
     return positive_float("m_bh", m_bh, "Msun", what="the black-hole mass (a positive number)")
 
 
@@ -160,7 +173,8 @@ class BrokenPowerLawIMF:
         try:
             m_min, m_max = float(self.m_min), float(self.m_max)
         except (TypeError, ValueError):
-            raise ValueError(f"IMF m_min, m_max: expected numbers in Msun, got {self.m_min!r}, {self.m_max!r}") from None
+            raise ValueError(
+                f"IMF m_min, m_max: expected numbers in Msun, got {self.m_min!r}, {self.m_max!r}") from None
         if not (math.isfinite(m_min) and m_min > 0):
             raise ValueError(f"IMF m_min: expected a positive mass in Msun, got {self.m_min!r}")
         if not (math.isfinite(m_max) and m_max > m_min):
@@ -318,6 +332,87 @@ def hills_ejection_speed(m_ejected, m_companion, a_au, m_bh):
 
 
 # --------------------------------------------------------------------------------------------
+# weighting a trajectory bank (the surface every launch model implements)
+
+
+@dataclass(frozen=True, eq=False)
+class BankSamples:
+    """A trajectory bank's stored samples as a launch model weights them.
+
+    Built by :func:`swerve.bank.sample_weights`; plain arrays, so that this module needs no
+    bank. A sample's weight is ``p(launch at v_o, visible at t_j) × inv_q[o]`` (see
+    :mod:`swerve.bank`).
+
+    Attributes
+    ----------
+    v_launch : float array (n_orbits,)
+        Launch speed of each orbit, km/s.
+    inv_q : float array (n_orbits,)
+        ``Δt / (N_orbits q(v_o))``, Myr km/s: the bank's step over its proposal density of the
+        orbit's launch speed (0 where that density is 0).
+    orbit : int array (n,)
+        Orbit index of each sample to weight.
+    t : float array (n,)
+        Flight time of each sample, Myr.
+    t_cut : float
+        Longest flight time of interest, Myr (``≤ t_max``).
+    t_max : float
+        The bank's longest flight time, Myr.
+    v_lo, v_hi : float
+        The bank's proposal range of launch speeds, km/s.
+    v_reach : float
+        Lowest launch speed that reaches the bank's region, km/s: speeds below it carry no
+        sample and are not missing.
+    galaxy : dict
+        ``Galaxy.to_dict()`` of the bank (e.g. its black-hole mass).
+    """
+
+    v_launch: np.ndarray
+    inv_q: np.ndarray
+    orbit: np.ndarray
+    t: np.ndarray
+    t_cut: float
+    t_max: float
+    v_lo: float
+    v_hi: float
+    v_reach: float
+    galaxy: dict
+
+
+class TrajectoryWeights(NamedTuple):
+    """What a launch model's ``trajectory_weights`` returns."""
+
+    #: float array (n,): weight of each sample, Myr per unit ejection rate
+    weights: np.ndarray
+    #: launch probability at speeds the bank cannot represent (above its proposal, or between
+    #: the proposal's v_lo and the reach speed)
+    missing_fraction: float
+    #: entries for the weights' record (e.g. ``orbit_weight`` (n_orbits,) when every sample of an
+    #: orbit has the same weight)
+    info: dict
+    #: a message more specific than the bank's own when ``missing_fraction`` is too large, or None
+    coverage_message: str | None = None
+
+
+def _no_mass_range(mass_range):
+    if mass_range is not None:
+        raise ValueError("mass_range: only meaningful for the Hills launch model")
+
+
+def _speed_only_weights(model, s: BankSamples, missing: float, message: str | None = None) -> TrajectoryWeights:
+    """Weights of a model that only gives a launch speed: ``p(v_o) / q(v_o) Δt / N``, times
+    ``t < t_cut`` (constant ejection rate, flight times uniform up to ``t_cut``)."""
+    ratio_o = model.pdf(s.v_launch) * s.inv_q
+    w = ratio_o[s.orbit]
+    info = {}
+    if s.t_cut < s.t_max:  # every stored flight time is below t_max
+        w = w * (s.t < s.t_cut)
+    else:
+        info["orbit_weight"] = ratio_o  # every sample of orbit o has this weight
+    return TrajectoryWeights(w, missing, info, message)
+
+
+# --------------------------------------------------------------------------------------------
 # tabulated launch-speed density
 
 
@@ -391,12 +486,26 @@ class TabulatedSpeedDensity:
         x = self.log10_edges[i] + rng.random(n) * np.diff(self.log10_edges)[i]
         return 10.0 ** x
 
+    def trajectory_weights(self, samples: BankSamples, *, mass_range=None, table_samples: int = 400_000,
+                           table_seed: int = 20100101) -> TrajectoryWeights:
+        """Weights ``p(v) / q(v) Δt / N`` of a bank's samples (:class:`BankSamples`); the
+        missing fraction by the table's CDF. ``table_samples``, ``table_seed``: unused."""
+        _no_mass_range(mass_range)
+        s = samples
+        vv = np.logspace(self.log10_edges[0], self.log10_edges[-1], 4001)
+        pv = self.pdf(vv)
+        cdf = np.concatenate([[0.0], np.cumsum(0.5 * (pv[1:] + pv[:-1]) * np.diff(vv))])
+        cdf /= cdf[-1]
+        bad = (vv > s.v_hi) | ((vv < s.v_lo) & (vv >= s.v_reach))
+        missing = float(np.sum(np.diff(cdf)[bad[1:]]))
+        return _speed_only_weights(self, s, missing)
+
     def to_dict(self) -> dict:
         return {"model": "tabulated_speed", "log10_edges": self.log10_edges.tolist(),
                 "density": self.density.tolist(), "meta": dict(self.meta)}
 
     @classmethod
-    def from_dict(cls, d: dict) -> "TabulatedSpeedDensity":
+    def from_dict(cls, d: dict) -> TabulatedSpeedDensity:
         try:
             return cls(np.asarray(d["log10_edges"]), np.asarray(d["density"]), dict(d.get("meta", {})))
         except KeyError as err:
@@ -463,7 +572,8 @@ class HillsLaunch:
         for k, v in values.items():
             object.__setattr__(self, k, v)
         if not self.m_min < self.m_max:
-            raise ValueError(f"m_min: expected m_min < m_max, got m_min = {self.m_min:g} >= m_max = {self.m_max:g} Msun")
+            raise ValueError(
+                f"m_min: expected m_min < m_max, got m_min = {self.m_min:g} >= m_max = {self.m_max:g} Msun")
         q = np.linspace(self.q_min, 1.0, 64)
         widest_contact = float(np.max(roche_contact_separation(self.m_max, q * self.m_max))) / RSUN_AU
         if self.a_max_rsun <= widest_contact:
@@ -566,13 +676,55 @@ class HillsLaunch:
                 "fraction_outside": float(1.0 - inside.mean())}
         return TabulatedSpeedDensity(edges, counts / (inside.sum() * np.diff(edges)), meta)
 
+    def trajectory_weights(self, samples: BankSamples, *, mass_range=None, table_samples: int = 400_000,
+                           table_seed: int = 20100101) -> TrajectoryWeights:
+        """Weights of a bank's samples (:class:`BankSamples`) by the joint density of launch
+        speed and survival, ``p(v, alive at t) Δt / (N q(v))``, ``t < t_cut``.
+
+        The ejected star's mass sets its lifetime and is correlated with its speed, so the
+        density is tabulated from ``table_samples`` ejections drawn with ``table_seed``
+        (:func:`hills_alive_table`, memoised) for the bank's black hole, up to its ``t_max``.
+
+        Parameters
+        ----------
+        samples : BankSamples
+        mass_range : (float, float), optional
+            Only ejected stars with mass in this range, Msun.
+        table_samples, table_seed : int
+            Monte Carlo of the table.
+        """
+        s = samples
+        info = {}
+        if mass_range is not None:
+            info["mass_range"] = [float(mass_range[0]), float(mass_range[1])]
+        table = _hills_table_cached(self, _m_bh_of(s.galaxy), s.t_max, mass_range, table_samples, table_seed)
+        centres = 0.5 * (table.log10_edges[1:] + table.log10_edges[:-1])
+        mass_per_bin = table.value[:, 0] * np.diff(table.log10_edges)
+        outside = (10 ** centres > s.v_hi) | ((10 ** centres < s.v_lo) & (10 ** centres >= s.v_reach))
+        missing = float(np.sum(mass_per_bin[outside]) + table.meta["fraction_outside_table"])
+        info["hills_table"] = table.meta
+        # per orbit: speed bin and 1 / (q(v) v ln 10); per sample: linear interpolation in t
+        v_o = s.v_launch
+        b_o = np.searchsorted(table.log10_edges, np.log10(v_o), side="right") - 1
+        in_o = (b_o >= 0) & (b_o < table.value.shape[0])
+        b_o = np.clip(b_o, 0, table.value.shape[0] - 1)
+        f_o = np.where(in_o, s.inv_q / (v_o * math.log(10.0)), 0.0)
+        tg = table.t_grid
+        fi = np.clip((s.t - tg[0]) / (tg[1] - tg[0]), 0.0, tg.size - 1 - 1e-9)
+        i = fi.astype(np.int64)
+        f = fi - i
+        b = b_o[s.orbit]
+        val = (1.0 - f) * table.value[b, i] + f * table.value[b, np.minimum(i + 1, tg.size - 1)]
+        w = val * f_o[s.orbit] * (s.t < s.t_cut)
+        return TrajectoryWeights(w, missing, info)
+
     def to_dict(self) -> dict:
         d = {"model": "hills", "imf": self.imf}
         d.update({p.name: getattr(self, p.name) for p in self.PARAMETERS})
         return d
 
     @classmethod
-    def from_dict(cls, d: dict) -> "HillsLaunch":
+    def from_dict(cls, d: dict) -> HillsLaunch:
         return cls(**_strip_model(d, "hills", ("imf",) + tuple(p.name for p in cls.PARAMETERS)))
 
 
@@ -639,13 +791,29 @@ class BoundedPowerLawSpeed:
         n, rng = _check_n(n), _check_rng(rng)
         return _powerlaw_ppf(rng.random(n), self.v_min, self.v_max, self.slope)
 
+    def trajectory_weights(self, samples: BankSamples, *, mass_range=None, table_samples: int = 400_000,
+                           table_seed: int = 20100101) -> TrajectoryWeights:
+        """Weights ``p(v) / q(v) Δt / N`` of a bank's samples (:class:`BankSamples`); the
+        missing fraction by the analytic CDF. ``table_samples``, ``table_seed``: unused."""
+        _no_mass_range(mass_range)
+        s = samples
+        hi = self.v_max
+        missing = float(1.0 - self.cdf(s.v_hi))
+        if s.v_lo > s.v_reach:
+            missing += float(self.cdf(s.v_lo) - self.cdf(s.v_reach))
+        message = None
+        if hi > s.v_hi:
+            message = (f"launch v_max = {hi:g} km/s exceeds the bank's proposal range [{s.v_lo:g}, {s.v_hi:g}] km/s "
+                       f"({missing:.1%} of launches faster than the bank's orbits); build a bank with v_hi >= {hi:g}")
+        return _speed_only_weights(self, s, missing, message)
+
     def to_dict(self) -> dict:
         d = {"model": "bounded_power_law_speed"}
         d.update({p.name: getattr(self, p.name) for p in self.PARAMETERS})
         return d
 
     @classmethod
-    def from_dict(cls, d: dict) -> "BoundedPowerLawSpeed":
+    def from_dict(cls, d: dict) -> BoundedPowerLawSpeed:
         return cls(**_strip_model(d, "bounded_power_law_speed", tuple(p.name for p in cls.PARAMETERS)))
 
 
@@ -731,3 +899,110 @@ def flight_time_weight(t_flight, mass, t_max=None, normalise: bool = True):
     if normalise:
         return np.where(alive, 1.0 / T, 0.0)
     return alive.astype(float)
+
+
+# --------------------------------------------------------------------------------------------
+# the Hills model's joint density of launch speed and survival
+
+
+@dataclass(frozen=True, eq=False)
+class HillsAliveTable:
+    """Joint density of launch speed and survival for the Hills model, tabulated.
+
+    ``value[b, g]`` is the density per dex of launch speed in bin ``b`` of log10 v of stars that
+    are still on the main sequence at flight time ``t_grid[g]``; linear in t between grid points.
+    Normalised per ejection (of a star in ``mass_range`` when one is given).
+    """
+
+    log10_edges: np.ndarray
+    t_grid: np.ndarray
+    value: np.ndarray
+    meta: dict
+
+    def __call__(self, v, t):
+        """Density per km/s of (launch speed ``v``, alive at flight time ``t`` [Myr])."""
+        v = np.asarray(v, dtype=float)
+        t = np.asarray(t, dtype=float)
+        x = np.log10(np.maximum(v, 1e-300))
+        b = np.searchsorted(self.log10_edges, x, side="right") - 1
+        inside = (b >= 0) & (b < self.value.shape[0])
+        b = np.clip(b, 0, self.value.shape[0] - 1)
+        tg = self.t_grid
+        fi = np.clip((t - tg[0]) / (tg[1] - tg[0]), 0.0, tg.size - 1 - 1e-12)
+        i = fi.astype(np.int64)
+        f = fi - i
+        val = (1.0 - f) * self.value[b, i] + f * self.value[b, np.minimum(i + 1, tg.size - 1)]
+        return np.where(inside & (t >= tg[0]) & (t <= tg[-1]), val / (v * math.log(10.0)), 0.0)
+
+
+def hills_alive_table(launch, m_bh: float, t_max: float, *, mass_range=None, n_samples: int = 400_000,
+                      seed: int = 20100101, n_bins: int = 120, log10_v_range=(1.5, 4.5),
+                      n_t: int = 301) -> HillsAliveTable:
+    """Monte-Carlo table of ``p(v, alive at t)`` for a :class:`HillsLaunch`.
+
+    Parameters
+    ----------
+    launch : HillsLaunch
+    m_bh : float
+        Black-hole mass, Msun.
+    t_max : float
+        Largest flight time tabulated, Myr.
+    mass_range : (float, float), optional
+        Keep only ejected stars with mass in [lo, hi] Msun (normalised per such ejection).
+    n_samples, seed : int
+        Ejections simulated and the seed of their Generator (recorded).
+    n_bins, log10_v_range : int, (float, float)
+        Histogram in log10 v.
+    n_t : int
+        Flight-time grid points on [0, t_max].
+    """
+    s = launch.sample(int(n_samples), np.random.default_rng(seed), m_bh)
+    keep = np.ones(s["mass"].size, dtype=bool)
+    if mass_range is not None:
+        lo, hi = (float(x) for x in mass_range)
+        if not (0 <= lo < hi):
+            raise ValueError(f"mass_range: expected (low, high) in Msun with 0 <= low < high, got {mass_range!r}")
+        keep = (s["mass"] >= lo) & (s["mass"] <= hi)
+        if keep.sum() < 1000:
+            raise ValueError(f"mass_range: only {int(keep.sum())} of {n_samples} Hills ejections fall in "
+                             f"{list(mass_range)} Msun; widen the range or check the launch model's m_min, m_max")
+    x = np.log10(s["v_ej"][keep])
+    life = main_sequence_lifetime(s["mass"][keep])
+    edges = np.linspace(float(log10_v_range[0]), float(log10_v_range[1]), int(n_bins) + 1)
+    t_grid = np.linspace(0.0, float(t_max), int(n_t))
+    b = np.searchsorted(edges, x, side="right") - 1
+    ok = (b >= 0) & (b < n_bins)
+    # for each speed bin, the number of its stars alive at each grid time
+    order = np.argsort(life[ok])
+    b_ok, life_ok = b[ok][order], life[ok][order]
+    value = np.zeros((int(n_bins), t_grid.size))
+    for j in range(int(n_bins)):
+        lj = life_ok[b_ok == j]
+        value[j] = lj.size - np.searchsorted(lj, t_grid, side="right")
+    value /= keep.sum() * np.diff(edges)[:, None]
+    meta = {"model": launch.to_dict(), "m_bh": float(m_bh), "n_samples": int(n_samples), "seed": int(seed),
+            "mass_range": None if mass_range is None else [float(mass_range[0]), float(mass_range[1])],
+            "fraction_outside_table": float(1.0 - ok.sum() / keep.sum())}
+    return HillsAliveTable(edges, t_grid, value, meta)
+
+
+def _m_bh_of(galaxy_dict) -> float:
+    for c in galaxy_dict.get("components", []):
+        if "m_bh" in c.get("params", {}):
+            return float(c["params"]["m_bh"])
+    raise ValueError("Hills launch: the bank's Galaxy has no central black hole (m_bh)")
+
+
+_HILLS_CACHE: dict = {}
+
+
+def _hills_table_cached(launch, m_bh, t_max, mass_range, n_samples, seed):
+    """:func:`hills_alive_table`, memoised on its (deterministic) inputs."""
+    key = json.dumps([launch.to_dict(), m_bh, t_max, None if mass_range is None else list(map(float, mass_range)),
+                      int(n_samples), int(seed)], sort_keys=True)
+    if key not in _HILLS_CACHE:
+        if len(_HILLS_CACHE) >= 32:
+            _HILLS_CACHE.pop(next(iter(_HILLS_CACHE)))
+        _HILLS_CACHE[key] = hills_alive_table(launch, m_bh, t_max, mass_range=mass_range,
+                                              n_samples=n_samples, seed=seed)
+    return _HILLS_CACHE[key]

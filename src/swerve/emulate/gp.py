@@ -1,79 +1,43 @@
-"""Emulators of summary statistics, and their safe file format.
+"""The Gaussian-process emulator: :class:`GPEmulator`.
 
-The training stage fits an emulator to simulated summaries at the design points; the
-likelihood calls it at every step of the chain. :class:`GPEmulator` is a Gaussian-process
-regression (scikit-learn) of the summary vector as a function of the Galaxy parameters θ,
-optionally compressed by PCA, that reports its own uncertainty.
+A Gaussian-process regression (scikit-learn) of the summary vector as a function of the Galaxy
+parameters θ, optionally compressed by PCA, that reports its own uncertainty.
 
 Fitting uses scikit-learn; prediction does not: after :meth:`GPEmulator.fit` the kernel
 hyperparameters, ``alpha = K⁻¹ y`` and the Cholesky factor of every component GP are kept as
 plain arrays, and :meth:`GPEmulator.predict` evaluates the same formulas as scikit-learn's
 ``GaussianProcessRegressor.predict`` (same operations in the same order, so the results agree
-to round-off) with a compiled cross-kernel, numpy's vectorised ``exp`` and one BLAS triangular
-solve per component, vectorised over many θ. Measured on a shared 2-core machine, 64 θ at once,
-5 parameters, 300 training points, 40 outputs in 10 PCA components: mean ~0.8 ms, mean and
-standard deviation ~3 ms (the triangular solves, O(n² q) per component, dominate); about 3 to
-10 times faster than scikit-learn's own predict.
+to round-off) with the compiled cross-kernel of :mod:`swerve.emulate.kernels`, numpy's
+vectorised ``exp`` and one BLAS triangular solve per component, vectorised over many θ; the
+mean alone (the sampler's path) with the fused kernel, which never stores the
+cross-covariance.
 
-An emulator is a file people share, so loading must not run code. :func:`save` writes a
-folder ::
-
-    emulator.json      format, version, parameters and bounds, kernel hyperparameters, PCA
-                       information, array manifest (dtype, shape), caller's metadata
-    arrays.npz         every numeric array (float64 only), read with allow_pickle=False
-    checksums.sha256   SHA-256 of the two files above, in ``sha256sum -c`` format
-
-and :func:`load` verifies the checksums, the format version, the manifest and every array's
-shape before it builds anything. No pickle and no joblib anywhere on that path. The checksums
-detect truncation and corruption, not a deliberate forgery of all three files (that needs a
-signature, which is out of scope).
+The emulator's state in and out of a file (:meth:`GPEmulator._state`,
+:meth:`GPEmulator._from_state`) is the header and arrays that :mod:`swerve.emulate.files`
+writes and verifies; this class registers itself there under its ``emulator_type``.
 """
 
 from __future__ import annotations
 
-import datetime as _dt
-import hashlib
-import json
 import math
-import os
-import shutil
-import tempfile
-import threading
-import uuid
 import warnings
-import zipfile
-import zlib
 from collections.abc import Mapping
-from pathlib import Path
 
-import numba as nb
 import numpy as np
+from joblib import Parallel, delayed
+from scipy.linalg import cholesky
 from scipy.linalg.blas import dtrsm as _dtrsm
 from sklearn.base import BaseEstimator, RegressorMixin
 from sklearn.exceptions import ConvergenceWarning
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import ConstantKernel, WhiteKernel
 from sklearn.utils.validation import check_is_fitted
 
-from . import __version__
-from .fastmath import fast_exp, prefer_512
+from .files import ARRAYS_FILE, JSON_FILE, EmulatorFileError, check_json, register
+from .kernels import KERNELS, cross_kernel, cross_kernel_workspace, mean_fused
 
-__all__ = [  # noqa: RUF022 - in reading order
-    "FORMAT_NAME",
-    "FORMAT_VERSION",
-    "EmulatorFileError",
-    "GPEmulator",
-    "save",
-    "load",
-    "describe",
-    "content_hash",
-]
+__all__ = ["JITTER", "SCALE_FLOOR", "GPEmulator"]
 
-#: Value of the ``format`` entry of ``emulator.json``.
-FORMAT_NAME = "swerve-emulator"
-#: Highest format version this swerve writes and reads.
-FORMAT_VERSION = 1
-JSON_FILE = "emulator.json"
-ARRAYS_FILE = "arrays.npz"
-CHECKSUMS_FILE = "checksums.sha256"
 
 #: Jitter added to the diagonal of every training covariance (scikit-learn's default alpha).
 JITTER = 1e-10
@@ -85,149 +49,11 @@ _BLOCK = 1024
 SCALE_FLOOR = 1e-6
 
 
-class EmulatorFileError(ValueError):
-    """An emulator folder that is missing, damaged, tampered with or of an unknown format."""
-
-
-# --------------------------------------------------------------------------------------------
-# kernels: scikit-learn builders (fit) and compiled cross-kernels (predict), one table
-# --------------------------------------------------------------------------------------------
-
-
-def _sk_matern52(length_scale, bounds):
-    from sklearn.gaussian_process.kernels import Matern
-
-    return Matern(length_scale=length_scale, length_scale_bounds=bounds, nu=2.5)
-
-
-def _sk_rbf(length_scale, bounds):
-    from sklearn.gaussian_process.kernels import RBF
-
-    return RBF(length_scale=length_scale, length_scale_bounds=bounds)
-
-
-_SQRT5 = math.sqrt(5.0)
-
-
-@nb.njit(cache=True, inline="always")
-def _squared_distances(xs, XsT, g, i, o):  # pragma: no cover - compiled
-    """``o[j]`` = squared distance between point i and training point j for component g
-    (pre-scaled inputs, as in :func:`_scaled_distance`), summed over dimensions in order."""
-    o[:] = 0.0
-    for k in range(xs.shape[2]):
-        xk = xs[g, i, k]
-        row = XsT[g, k]
-        for j in range(o.shape[0]):
-            diff = xk - row[j]
-            o[j] += diff * diff
-
-
-@nb.njit(cache=True)
-def _scaled_distance(xs, XsT, family, out):  # pragma: no cover - compiled
-    """Distances between pre-scaled points, in the form each kernel needs.
-
-    ``xs`` (G, q, d) and ``XsT`` (G, d, n) are inputs divided by each component's length
-    scales. ``out[g, i, j]`` = ``sqrt(5) r`` (Matérn 5/2) or ``-r²/2`` (RBF), ``r`` the
-    Euclidean distance, summed over dimensions in order, as scipy's ``cdist`` does.
-    """
-    G, q, _ = xs.shape
-    n = XsT.shape[2]
-    for g in range(G):
-        for i in range(q):
-            o = out[g, i]
-            _squared_distances(xs, XsT, g, i, o)
-            if family == 0:
-                for j in range(n):
-                    o[j] = math.sqrt(o[j]) * _SQRT5
-            else:
-                for j in range(n):
-                    o[j] = -0.5 * o[j]
-
-
-@nb.njit(cache=True)
-def _matern52_from(r5, e, constant, out):  # pragma: no cover - compiled
-    """out = constant (1 + r5 + r5²/3) e, with r5 = sqrt(5) r and e = exp(-r5)."""
-    G, q, n = r5.shape
-    for g in range(G):
-        c = constant[g]
-        for i in range(q):
-            for j in range(n):
-                x = r5[g, i, j]
-                out[g, i, j] = c * ((1.0 + x + x * x / 3.0) * e[g, i, j])
-
-
-@nb.njit(parallel=True, fastmath=True, cache=True)
-def _mean_fused(xs, XsT, constant, alpha, family, out):  # pragma: no cover - compiled
-    """``out[i, g] = Σ_j k_g(x_i, X_j) α_g[j]``: every component GP's mean at q points, the
-    cross-covariance never stored (the sampler's path: predict without variance).
-
-    The same kernel arithmetic as :func:`_scaled_distance` and :func:`_matern52_from`, with
-    :func:`swerve.fastmath.fast_exp` (relative error < 1e-13) in place of numpy's exp so that
-    the loop over training points vectorises, and the sum over them in the compiler's order
-    (``tests/test_emulate.py``: within 1e-14 of Σ_j |k_j α_j| of scikit-learn's, the round-off
-    of that cancelling sum). 512-bit vectors where the CPU has them
-    (:func:`swerve.fastmath.prefer_512`)."""
-    G, q, _ = xs.shape
-    n = XsT.shape[2]
-    for g in nb.prange(G):
-        prefer_512()
-        c = constant[g]
-        a = alpha[g]
-        s = np.empty(n)
-        for i in range(q):
-            _squared_distances(xs, XsT, g, i, s)
-            acc = 0.0
-            if family == 0:
-                for j in range(n):
-                    r5 = math.sqrt(s[j]) * _SQRT5
-                    acc += (1.0 + r5 + r5 * r5 / 3.0) * fast_exp(-r5) * a[j]
-            else:
-                for j in range(n):
-                    acc += fast_exp(-0.5 * s[j]) * a[j]
-            out[i, g] = c * acc
-
-
-def _cross_kernel(xs, XsT, constant, family, work=None):
-    """Cross-covariance (G, q, n) of every component GP, the same arithmetic as scikit-learn
-    (``exp`` by numpy, as there). ``work``: optional pair of float arrays of that shape to
-    compute in (the result is one of them)."""
-    G, q, _ = xs.shape
-    shape = (G, q, XsT.shape[2])
-    r, e = work if work is not None else (np.empty(shape), np.empty(shape) if family == 0 else None)
-    _scaled_distance(xs, XsT, family, r)
-    if family == 0:
-        np.negative(r, out=e)
-        np.exp(e, out=e)
-        _matern52_from(r, e, constant, e)
-        return e
-    np.exp(r, out=r)
-    r *= constant[:, None, None]
-    return r
-
-
-#: largest cross-covariance (floats) computed in a reused per-thread buffer: the sampler's
-#: predictions for a few dozen θ would otherwise spend more on fresh pages than on arithmetic
-_WORK_MAX = 1 << 21
-_WORK = threading.local()  # .buf: this thread's pair of scratch arrays (used within one predict call)
-
-
-#: kernel name -> (code of the compiled kernel, scikit-learn builder)
-_KERNELS = {"matern52": (0, _sk_matern52), "rbf": (1, _sk_rbf)}
-
-
-# --------------------------------------------------------------------------------------------
-# the emulator
-# --------------------------------------------------------------------------------------------
-
-
 def _fit_component(settings, X, t, alpha, seed):
     """Fit one component's Gaussian process (a picklable task for :meth:`GPEmulator.fit`).
     Returns the fitted regressor and the warnings raised, as (category, message) pairs."""
-    from sklearn.gaussian_process import GaussianProcessRegressor
-    from sklearn.gaussian_process.kernels import ConstantKernel, WhiteKernel
-
     kernel, d, cb, ls_bounds, nl_bounds, white_noise, n_restarts = settings
-    kern = ConstantKernel(1.0, cb) * _KERNELS[kernel][1](np.full(d, 0.5), ls_bounds)
+    kern = ConstantKernel(1.0, cb) * KERNELS[kernel][1](np.full(d, 0.5), ls_bounds)
     if white_noise:
         kern = kern + WhiteKernel(float(np.clip(1e-4, *nl_bounds)), nl_bounds)
     gp = GaussianProcessRegressor(kernel=kern, alpha=alpha, n_restarts_optimizer=n_restarts,
@@ -491,8 +317,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         """
         names, lo, hi = self._domain()
         d = len(names)
-        if self.kernel not in _KERNELS:
-            raise ValueError(f"kernel: expected one of {sorted(_KERNELS)}, got {self.kernel!r}")
+        if self.kernel not in KERNELS:
+            raise ValueError(f"kernel: expected one of {sorted(KERNELS)}, got {self.kernel!r}")
         if not isinstance(self.n_restarts, (int, np.integer)) or self.n_restarts < 0:
             raise ValueError(f"n_restarts: expected an int >= 0, got {self.n_restarts!r}")
         theta = self._as_2d(theta, "theta", d, "one column per parameter")
@@ -518,7 +344,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         if self.output_names is not None and len(list(self.output_names)) != m:
             raise ValueError(f"output_names: expected {m} names (one per output), got {len(list(self.output_names))}")
         if self.metadata is not None:
-            _check_json("metadata", self.metadata)
+            check_json("metadata", self.metadata)
         ls_bounds = _check_pair("length_scale_bounds", self.length_scale_bounds)
         nl_bounds = _check_pair("noise_level_bounds", self.noise_level_bounds)
         cb = _check_pair("constant_bounds", self.constant_bounds)
@@ -560,8 +386,6 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         if n_jobs == 1 or G == 1:
             fitted = [_fit_component(settings, X, t[:, c], alphas[c], int(seeds[c])) for c in range(G)]
         else:
-            from joblib import Parallel, delayed
-
             fitted = Parallel(n_jobs=n_jobs, backend="loky")(
                 delayed(_fit_component)(settings, X, t[:, c], alphas[c], int(seeds[c])) for c in range(G))
         gps, records = [], []
@@ -640,7 +464,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         # (Multiplying by a precomputed L⁻¹ is ~1.6x faster but loses accuracy when K is
         # ill-conditioned, as it is for noise-free simulations; the solve is what sklearn does.)
         self._Lf = [np.asfortranarray(L) for L in self.L_]
-        self._code = _KERNELS[self.kernel][0]
+        self._code = KERNELS[self.kernel][0]
         self._alpha_c = np.ascontiguousarray(self.alpha_, dtype=float)
         if self.components_ is not None:
             self._W = self.components_ * self.score_scale_[:, None]  # scores -> standardised y
@@ -687,7 +511,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         if single:
             th = th[None, :]
         if th.ndim != 2 or th.shape[1] != d:
-            raise ValueError(f"theta: expected shape (q, {d}) or ({d},) (one column per parameter {self._names}), got {np.shape(theta)}")
+            raise ValueError(f"theta: expected shape (q, {d}) or ({d},) (one column per parameter {self._names}), "
+                             f"got {np.shape(theta)}")
         if not np.all(np.isfinite(th)):
             r, c = np.argwhere(~np.isfinite(th))[0]
             raise ValueError(f"theta: non-finite {self._names[c]} = {th[r, c]} at row {r}")
@@ -711,13 +536,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
 
     def _workspace(self, G, q):
         """This thread's buffers for a (G, q, n_train) cross-covariance, or None when too big."""
-        shape = (G, q, self._XsT.shape[2])
-        if math.prod(shape) > _WORK_MAX:
-            return None
-        buf = getattr(_WORK, "buf", None)
-        if buf is None or buf[0].shape != shape:
-            buf = _WORK.buf = (np.empty(shape), np.empty(shape))
-        return buf
+        return cross_kernel_workspace((G, q, self._XsT.shape[2]))
 
     def _to_outputs(self, mt):
         """Component means (q, G) -> emulated summaries (q, n_outputs)."""
@@ -731,9 +550,9 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         prior = self.constant_ + self.noise_level_ if include_noise else self.constant_
         mt = np.empty((x.shape[0], G))
         if not want_var:
-            _mean_fused(xs, self._XsT, self.constant_, self._alpha_c, self._code, mt)
+            mean_fused(xs, self._XsT, self.constant_, self._alpha_c, self._code, mt)
             return (self._to_outputs(mt),)
-        K = _cross_kernel(xs, self._XsT, self.constant_, self._code, self._workspace(G, x.shape[0]))
+        K = cross_kernel(xs, self._XsT, self.constant_, self._code, self._workspace(G, x.shape[0]))
         var_t = np.empty((G, x.shape[0])) if want_var else None
         for g in range(G):
             # one matrix-vector product per component, as sklearn does (K @ alpha cancels
@@ -767,9 +586,6 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         scikit-learn's fit computes them (``K = kernel_(X); K += diag(alpha); cholesky``) from
         the stored inputs and hyperparameters. Not stored: (n_components, n, n) floats would
         make a shared emulator tens of MB; recomputing them takes well under a second."""
-        from scipy.linalg import cholesky
-        from sklearn.gaussian_process.kernels import ConstantKernel, WhiteKernel
-
         n = self.X_train_.shape[0]
         t_var = None
         if self.y_var_train_ is not None:
@@ -779,7 +595,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
                 y_var = self._to_fit_space(scaling, self.theta_train_, self.y_train_, y_var)[1]
             z_var = y_var / self.y_scale_**2
             t_var = z_var if self.components_ is None else (z_var @ (self.components_.T**2)) / self.score_scale_**2
-        builder = _KERNELS[self.kernel][1]
+        builder = KERNELS[self.kernel][1]
         L = np.empty((self.n_components_, n, n))
         for c in range(self.n_components_):
             kern = ConstantKernel(float(self.constant_[c])) * builder(self.length_scale_[c].copy(), (1e-5, 1e5))
@@ -812,7 +628,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
             "settings": {
                 "kernel": self.kernel,
                 "n_restarts": int(self.n_restarts),
-                "n_pca": self.n_pca if self.n_pca is None else (int(self.n_pca) if isinstance(self.n_pca, (int, np.integer)) else float(self.n_pca)),
+                "n_pca": self.n_pca if self.n_pca is None else (
+                    int(self.n_pca) if isinstance(self.n_pca, (int, np.integer)) else float(self.n_pca)),
                 "normalize": bool(self.normalize),
                 "white_noise": bool(self.white_noise),
                 "length_scale_bounds": [float(v) for v in self.length_scale_bounds],
@@ -889,7 +706,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
                 raise TypeError("settings must be a table")
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
             raise EmulatorFileError(f"{where}: malformed {JSON_FILE} ({type(exc).__name__}: {exc})") from None
-        if st.get("kernel") not in _KERNELS:
+        if st.get("kernel") not in KERNELS:
             raise EmulatorFileError(f"{where}: unknown kernel {st.get('kernel')!r} in {JSON_FILE}")
         d = len(names)
         expected = {
@@ -903,7 +720,8 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         missing = sorted(set(expected) - set(arrays))
         extra = sorted(set(arrays) - set(expected))
         if missing or extra:
-            raise EmulatorFileError(f"{where}: {ARRAYS_FILE} arrays do not match the emulator (missing {missing}, unexpected {extra})")
+            raise EmulatorFileError(
+                f"{where}: {ARRAYS_FILE} arrays do not match the emulator (missing {missing}, unexpected {extra})")
         for key, shape in expected.items():
             if arrays[key].shape != shape:
                 raise EmulatorFileError(f"{where}: array {key!r} has shape {arrays[key].shape}; expected {shape}")
@@ -950,6 +768,7 @@ class GPEmulator(RegressorMixin, BaseEstimator):
         return em
 
 
+
 def _scaled_from_doc(value, where):
     """``scaled_outputs`` of an emulator file (None when absent), its factor checked."""
     if value is None:
@@ -969,12 +788,6 @@ def _check_pair(name, value):
     return (lo, hi)
 
 
-def _check_json(name, value):
-    try:
-        json.dumps(value, allow_nan=False)
-    except (TypeError, ValueError) as exc:
-        raise ValueError(f"{name}: must be plain JSON data (dict, list, str, number, bool, None): {exc}") from None
-
 
 def _component_seeds(random_state, count):
     if isinstance(random_state, np.random.Generator):
@@ -984,320 +797,4 @@ def _component_seeds(random_state, count):
     raise ValueError(f"random_state: expected an int >= 0 or a numpy Generator, got {random_state!r}")
 
 
-# --------------------------------------------------------------------------------------------
-# files
-# --------------------------------------------------------------------------------------------
-
-#: emulator type in emulator.json -> class (a table, so new types register here)
-_TYPES = {GPEmulator.emulator_type: GPEmulator}
-#: the only dtypes an arrays file may hold
-_SAFE_DTYPES = {"<f8": np.dtype("<f8")}
-#: words that mark a pickled file or an object array: refused wherever the JSON names a file or dtype
-_PICKLE_FILE_WORDS = ("pickle", "pkl", "joblib", "dill")
-_OBJECT_DTYPE_WORDS = ("object", "pickle", "|o", "<o", ">o")
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
-
-def _write_synced(path: Path, data: bytes):
-    with open(path, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-
-
-def save(emulator, folder, metadata: Mapping | None = None, overwrite: bool = False) -> Path:
-    """Write a fitted emulator to ``folder`` (created atomically).
-
-    Parameters
-    ----------
-    emulator : GPEmulator
-        Fitted.
-    folder : path-like
-        The emulator folder to create.
-    metadata : mapping, optional
-        Free-form JSON data merged over ``emulator.metadata`` (e.g. ``selection``,
-        ``summaries``, ``galaxy``, ``solar``, ``provenance``: configuration hash, seed, ...).
-    overwrite : bool
-        Replace an existing folder (the old one is removed only after the new one is in place).
-
-    Returns
-    -------
-    Path
-        ``folder``.
-
-    Notes
-    -----
-    The folder is built in a temporary folder beside the target and renamed into place, so a
-    crash never leaves a half-written emulator under the target name.
-    """
-    target = Path(folder)
-    if target.exists() and not overwrite:
-        raise FileExistsError(f"{target}: already exists; pass overwrite=True to replace it")
-    meta = dict(emulator.metadata or {})
-    if metadata is not None:
-        meta.update(metadata)
-    _check_json("metadata", meta)
-    header, arrays = emulator._state()
-    doc = {
-        "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
-        "swerve_version": __version__,
-        "emulator_type": emulator.emulator_type,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        **header,
-        "arrays_file": ARRAYS_FILE,
-        "arrays": {k: {"dtype": v.dtype.str, "shape": list(v.shape)} for k, v in arrays.items()},
-        "metadata": meta,
-    }
-    text = json.dumps(doc, indent=2, allow_nan=False) + "\n"
-
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
-    try:
-        with open(tmp / ARRAYS_FILE, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
-            fh.flush()
-            os.fsync(fh.fileno())
-        _write_synced(tmp / JSON_FILE, text.encode("utf-8"))
-        sums = "".join(f"{_sha256(tmp / f)}  {f}\n" for f in (JSON_FILE, ARRAYS_FILE))
-        _write_synced(tmp / CHECKSUMS_FILE, sums.encode("ascii"))
-        os.chmod(tmp, 0o755)
-        if target.exists():
-            old = target.with_name(f".{target.name}.old-{uuid.uuid4().hex[:8]}")
-            os.rename(target, old)
-            os.rename(tmp, target)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, target)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return target
-
-
-def _read_checksums(folder: Path) -> dict[str, str]:
-    path = folder / CHECKSUMS_FILE
-    try:
-        text = path.read_text(encoding="ascii")
-    except FileNotFoundError:
-        raise EmulatorFileError(f"{folder}: missing {CHECKSUMS_FILE}; not a complete emulator folder") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise EmulatorFileError(f"{folder}: cannot read {CHECKSUMS_FILE} ({exc})") from None
-    sums = {}
-    for i, line in enumerate(text.splitlines(), 1):
-        parts = line.split()
-        if len(parts) != 2 or len(parts[0]) != 64 or "/" in parts[1] or "\\" in parts[1]:
-            raise EmulatorFileError(f"{folder / CHECKSUMS_FILE}: line {i} is not '<sha256>  <file name>'")
-        sums[parts[1].lstrip("*")] = parts[0].lower()
-    for need in (JSON_FILE, ARRAYS_FILE):
-        if need not in sums:
-            raise EmulatorFileError(f"{folder / CHECKSUMS_FILE}: no checksum for {need}")
-    return sums
-
-
-def _verify(folder: Path) -> dict[str, str]:
-    sums = _read_checksums(folder)
-    for name, want in sums.items():
-        path = folder / name
-        if not path.is_file():
-            raise EmulatorFileError(f"{folder}: missing file {name}")
-        got = _sha256(path)
-        if got != want:
-            raise EmulatorFileError(
-                f"{path}: SHA-256 mismatch (file is truncated, damaged or was modified); refusing to load"
-            )
-    return sums
-
-
-def _refuse_pickle(folder, doc):
-    arrays_file = doc.get("arrays_file", ARRAYS_FILE)
-    manifest = doc.get("arrays")
-    if not isinstance(arrays_file, str) or not isinstance(manifest, dict):
-        raise EmulatorFileError(f"{folder / JSON_FILE}: 'arrays_file' and 'arrays' entries are required")
-    low = arrays_file.lower()
-    if any(w in low for w in _PICKLE_FILE_WORDS) or not low.endswith(".npz"):
-        raise EmulatorFileError(
-            f"{folder / JSON_FILE}: arrays_file {arrays_file!r} is not a .npz array file; swerve never loads pickles"
-        )
-    if arrays_file != ARRAYS_FILE:
-        raise EmulatorFileError(f"{folder / JSON_FILE}: arrays_file must be {ARRAYS_FILE!r}, got {arrays_file!r}")
-    for key, spec in manifest.items():
-        dtype = spec.get("dtype") if isinstance(spec, dict) else None
-        if not isinstance(dtype, str) or any(w in dtype.lower() for w in _OBJECT_DTYPE_WORDS) or dtype.upper() == "O":
-            raise EmulatorFileError(
-                f"{folder / JSON_FILE}: array {key!r} has dtype {dtype!r}; only float64 is allowed (no object or pickled arrays)"
-            )
-        if dtype not in _SAFE_DTYPES:
-            raise EmulatorFileError(f"{folder / JSON_FILE}: array {key!r} has dtype {dtype!r}; only float64 ('<f8') is allowed")
-
-
-def _read_doc(folder: Path) -> dict:
-    try:
-        doc = json.loads((folder / JSON_FILE).read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError) as exc:
-        raise EmulatorFileError(f"{folder / JSON_FILE}: cannot read ({exc})") from None
-    except json.JSONDecodeError as exc:
-        raise EmulatorFileError(f"{folder / JSON_FILE}: invalid JSON at line {exc.lineno}: {exc.msg}") from None
-    if not isinstance(doc, dict) or doc.get("format") != FORMAT_NAME:
-        raise EmulatorFileError(f"{folder / JSON_FILE}: not a swerve emulator (format is not {FORMAT_NAME!r})")
-    version = doc.get("format_version")
-    if not isinstance(version, int) or isinstance(version, bool) or version < 1:
-        raise EmulatorFileError(f"{folder / JSON_FILE}: format_version must be a positive int, got {version!r}")
-    if version > FORMAT_VERSION:
-        raise EmulatorFileError(
-            f"{folder / JSON_FILE}: format version {version} is newer than this swerve "
-            f"({__version__}) reads (up to {FORMAT_VERSION}); upgrade swerve"
-        )
-    if doc.get("emulator_type") not in _TYPES:
-        raise EmulatorFileError(
-            f"{folder / JSON_FILE}: unknown emulator_type {doc.get('emulator_type')!r}; expected one of {sorted(_TYPES)}"
-        )
-    _refuse_pickle(folder, doc)
-    return doc
-
-
-def load(folder):
-    """Load an emulator folder written by :func:`save`, verifying it first.
-
-    Checks, in order: the checksums of every file, the JSON format and version, that the
-    manifest names only float64 arrays in a ``.npz`` file, that the arrays file holds exactly
-    those arrays with those dtypes and shapes (read with ``allow_pickle=False``), and that the
-    shapes agree with the parameters, outputs and training points. Nothing is unpickled.
-
-    Raises
-    ------
-    EmulatorFileError
-        One line naming the file and the problem.
-    """
-    folder = Path(folder)
-    if not folder.is_dir():
-        raise EmulatorFileError(f"{folder}: no such emulator folder")
-    _verify(folder)
-    doc = _read_doc(folder)
-    manifest = doc["arrays"]
-    arrays = {}
-    try:
-        with np.load(folder / ARRAYS_FILE, allow_pickle=False) as npz:
-            names = set(npz.files)
-            if names != set(manifest):
-                raise EmulatorFileError(
-                    f"{folder / ARRAYS_FILE}: holds arrays {sorted(names)}, the manifest lists {sorted(manifest)}"
-                )
-            for key in sorted(names):
-                a = npz[key]
-                spec = manifest[key]
-                if a.dtype != _SAFE_DTYPES[spec["dtype"]] or list(a.shape) != list(spec["shape"]):
-                    raise EmulatorFileError(
-                        f"{folder / ARRAYS_FILE}: array {key!r} is {a.dtype.str} {a.shape}; "
-                        f"the manifest says {spec['dtype']} {tuple(spec['shape'])}"
-                    )
-                if not np.all(np.isfinite(a)):
-                    raise EmulatorFileError(f"{folder / ARRAYS_FILE}: array {key!r} holds non-finite values")
-                arrays[key] = a
-    except EmulatorFileError:
-        raise
-    except (ValueError, OSError, EOFError, KeyError, zipfile.BadZipFile, zlib.error) as exc:
-        raise EmulatorFileError(f"{folder / ARRAYS_FILE}: unreadable array file ({type(exc).__name__}: {' '.join(str(exc).split())})") from None
-    return _TYPES[doc["emulator_type"]]._from_state(doc, arrays, str(folder))
-
-
-def content_hash(folder) -> str:
-    """SHA-256 (hex) identifying an emulator folder's content (the hash of its verified
-    checksums file); record it in every inference output."""
-    folder = Path(folder)
-    _verify(folder)
-    return _sha256(folder / CHECKSUMS_FILE)
-
-
-# --------------------------------------------------------------------------------------------
-# description
-# --------------------------------------------------------------------------------------------
-
-
-def _flatten(prefix, value, lines, depth=0):
-    if isinstance(value, dict) and value and depth < 3:
-        for k, v in value.items():
-            _flatten(f"{prefix}.{k}" if prefix else str(k), v, lines, depth + 1)
-    else:
-        text = json.dumps(value) if not isinstance(value, str) else value
-        if len(text) > 100:
-            text = text[:97] + "..."
-        lines.append(f"    {prefix}: {text}")
-
-
-def describe(source) -> str:
-    """Multi-line description of an emulator folder or a fitted emulator (for ``swerve info``).
-
-    Parameters
-    ----------
-    source : path-like or GPEmulator
-
-    Returns
-    -------
-    str
-        Type and format, parameter domain, outputs, kernel, PCA, training provenance and
-        metadata (and, for a folder, the verified content hash).
-    """
-    if isinstance(source, GPEmulator):
-        header, _ = source._state()
-        doc = {"format": FORMAT_NAME, "format_version": FORMAT_VERSION, "swerve_version": __version__,
-               "emulator_type": source.emulator_type, "created": "(not saved)", **header,
-               "metadata": dict(source.metadata or {})}
-        title, digest = "swerve emulator (in memory)", None
-    else:
-        folder = Path(source)
-        em = load(folder)  # full verification
-        doc = _read_doc(folder)
-        del em
-        title, digest = f"swerve emulator {folder}", content_hash(folder)
-    k = doc["kernel"]
-    lines = [
-        title,
-        (f"  type: {doc['emulator_type']} (format {doc['format']} v{doc['format_version']}, "
-         f"written by swerve {doc['swerve_version']} on {doc['created']})"),
-        f"  parameters ({len(doc['parameters'])}):",
-    ]
-    for p in doc["parameters"]:
-        unit = f" {p['unit']}" if p["unit"] else ""
-        lines.append(f"    {p['name']:<16s} [{p['low']:.6g}, {p['high']:.6g}]{unit}")
-    out = doc["outputs"]
-    names = out.get("names")
-    shown = "" if not names else ": " + ", ".join(names[:8]) + (", ..." if len(names) > 8 else "")
-    lines.append(f"  outputs: {out['n_outputs']}{shown}")
-    if doc.get("pca"):
-        pca = doc["pca"]
-        lines.append(
-            f"  PCA: {pca['n_components']} components, {100 * sum(pca['explained_variance_ratio']):.4g}% "
-            f"of the standardised variance; truncation residual (sum over outputs) "
-            f"{pca['residual_variance_total']:.3g}"
-        )
-    so = doc["settings"].get("scaled_outputs")
-    if so:
-        lines.append(f"  scaled outputs: {len(so['linear'])} linear and {len(so['log'])} log outputs emulated divided by "
-                     f"s = 1/{so['parameter']}^2 - 1 (zero at {so['parameter']} = 1)")
-    ls = np.asarray(k["length_scale"])
-    lines.append(
-        f"  kernel: {k['family']}, {k['n_components']} component GPs; length scales (unit cube) "
-        f"{ls.min():.3g} to {ls.max():.3g}; noise levels up to {max(k['noise_level']):.3g}"
-    )
-    tr = doc["training"]
-    st = doc["settings"]
-    lines.append(
-        f"  training: {tr['n_points']} points, random_state {st.get('random_state')}, "
-        f"restarts {st.get('n_restarts')}, simulation variances {'given' if tr.get('has_y_var') else 'not given'}, "
-        f"{len(tr.get('fit_warnings', []))} optimizer warnings"
-    )
-    meta = doc.get("metadata") or {}
-    if meta:
-        lines.append("  metadata:")
-        _flatten("", meta, lines)
-    if digest:
-        lines.append(f"  content hash (sha256): {digest}")
-    return "\n".join(lines)
+register(GPEmulator)
