@@ -1,15 +1,22 @@
-"""Write ``src/swerve/orbit_lanes.py``: the Galaxy force and one DOP853 step for eight orbits
-at once, in explicit SIMD (:mod:`swerve.simd`).
+"""Write the generated kernels of the Galaxy and the orbit engine from the table of component
+kinds (``swerve.galaxy.kernels.COMPONENT_KINDS``):
 
-The formulas are written below once, as ordinary scalar Python statements (the same as in
-``swerve.galaxy.kernels``, ``swerve.galaxy.expansion`` and ``swerve.orbits._dop853_step``); this
-script translates each statement into lane-vector operations (``a * b`` becomes
-``S.mul(a, b)``, ``x if u < c else y`` becomes ``S.where_less(u, c, x, y)``, scalars are
-broadcast with ``S.splat``).  Run from the repository root after changing a force formula or
-the stepper, then run ``tests/test_orbits.py``::
+* ``src/swerve/galaxy/dispatch.py``: the kind codes and the scalar dispatch
+  (``component_accel``, ``component_potential``) over the kinds' scalar functions;
+* ``src/swerve/orbit_lanes.py``: the Galaxy force and one DOP853 step for eight orbits at once,
+  in explicit SIMD (:mod:`swerve.simd`).
 
-    python dev/generate_lanes.py           # rewrite the file
-    python dev/generate_lanes.py --check   # exit 1 if the file is out of date
+The force formulas are declared once, as scalar numba functions (``swerve.galaxy.formulas``;
+the rules a translated function follows are in its docstring); this script translates each
+statement into lane-vector operations (``a * b`` becomes ``S.mul(a, b)``, ``x if u < c else y``
+becomes ``S.where_less(u, c, x, y)``, scalars are broadcast with ``S.splat``).  A kind whose
+table entry gives its lane statements (``lanes=``) gets those, translated the same way.  The
+stepper's statements are written below (the same as ``swerve.orbits._dop853_step``).  Run from
+the repository root after changing a force formula, the table or the stepper, then clear the
+numba caches and run ``tests/test_orbit_lanes.py`` and ``tests/test_orbits.py``::
+
+    python dev/generate_lanes.py           # rewrite both files
+    python dev/generate_lanes.py --check   # exit 1 if either file is out of date
 
 The DOP853 coefficients are read from scipy (``scipy.integrate._ivp.dop853_coefficients``), as
 for ``swerve.orbits._dop853_step``.
@@ -18,12 +25,17 @@ for ``swerve.orbits._dop853_step``.
 from __future__ import annotations
 
 import ast
+import inspect
 import sys
+import textwrap
 from pathlib import Path
 
 from scipy.integrate._ivp import dop853_coefficients as dc
 
+from swerve.galaxy import kernels
+
 OUT = Path(__file__).resolve().parents[1] / "src" / "swerve" / "orbit_lanes.py"
+OUT_DISPATCH = Path(__file__).resolve().parents[1] / "src" / "swerve" / "galaxy" / "dispatch.py"
 
 _BINOPS = {ast.Add: "add", ast.Sub: "sub", ast.Mult: "mul", ast.Div: "div"}
 _CALLS = {"math.sqrt": "sqrt", "math.log1p": "log1p", "max": "maximum", "abs": "fabs"}
@@ -92,86 +104,80 @@ class Lanes:
         return out
 
 
-# --- the Galaxy force, per component kind (pars row p, positions X, Y, Z) ------------------
-_NFW_SERIES = "(0.5 + u * (-2.0 / 3.0 + u * (0.75 + u * (-0.8 + u * (5.0 / 6.0 + u * (-6.0 / 7.0))))))"
+# --- the Galaxy force, from the table of component kinds -------------------------------------------
+_XYZ = {"x": "X", "y": "Y", "z": "Z"}
 
 
-def _nfw_g(m, rs):
-    """-(1/m) dPhi/dm / (G M) of the NFW potential at radius ``m`` (u = m / rs), with the series
-    below u = 1e-3 (swerve.galaxy.kernels._nfw_dphi_dm_over_m)."""
-    return (f"({_NFW_SERIES} / ({rs} * {rs} * {m}) if u < 1e-3 "
-            f"else (math.log1p(u) / ({m} * {m}) - 1.0 / ({m} * ({rs} + {m}))) / {m})")
+class _Positions(ast.NodeTransformer):
+    """Renames the position arguments x, y, z to the lane vectors X, Y, Z."""
+
+    def visit_Name(self, node):
+        return ast.copy_location(ast.Name(_XYZ.get(node.id, node.id), node.ctx), node)
 
 
-FORCE = {
-    "KIND_POINT_MASS": """
-r2 = max(X * X + Y * Y + Z * Z, _TINY2)
-f = -p[0] / (r2 * math.sqrt(r2))
-ax += f * X
-ay += f * Y
-az += f * Z
-""",
-    "KIND_HERNQUIST": """
-r = max(math.sqrt(X * X + Y * Y + Z * Z), _TINY)
-s = r + p[1]
-f = -p[0] / (s * s * r)
-ax += f * X
-ay += f * Y
-az += f * Z
-""",
-    "KIND_MIYAMOTO_NAGAI": """
-zeta = math.sqrt(Z * Z + p[2] * p[2])
-q = p[1] + zeta
-d2 = X * X + Y * Y + q * q
-f = -p[0] / (d2 * math.sqrt(d2))
-ax += f * X
-ay += f * Y
-az += f * Z * q / zeta
-""",
-    "KIND_NFW_POTENTIAL_FLAT": f"""
-m = max(math.sqrt(X * X + Y * Y * p[2] + Z * Z * p[3]), _TINY)
-u = m / p[1]
-g = -p[0] * {_nfw_g("m", "p[1]")}
-ax += g * X
-ay += g * Y * p[2]
-az += g * Z * p[3]
-""",
-}
-# density-flattened halo: spherical mode (p[2] == 0) and node-table mode
-NFW_DENSITY_SPHERICAL = f"""
-r = max(math.sqrt(X * X + Y * Y + Z * Z), _TINY)
-u = r / p[1]
-g = -p[0] * {_nfw_g("r", "p[1]")}
-ax += g * X
-ay += g * Y
-az += g * Z
-"""
-NFW_DENSITY_HEAD = f"""
-r = max(math.sqrt(X * X + Y * Y + Z * Z), _TINY)
-u = r / p[3]
-b = 1.0 / (1.0 + u)
-g = -p[0] * {_nfw_g("r", "p[3]")} - 2.0 * p[0] * p[5] / (p[3] * p[3]) * b * b * b / r
-x2 = X * X * (p[4] * p[4])
-y2 = Y * Y * (p[4] * p[4])
-z2 = Z * Z * (p[4] * p[4])
-sx = 0.0 * X
-sy = 0.0 * X
-sz = 0.0 * X
-"""
-NFW_DENSITY_NODE = """
-v = max(math.sqrt(x2 * c1 + y2 * c2 + z2 * c3), _TINY)
-t = v + 1.0
-f = wk / (v * t * t)
-sx += f * c1
-sy += f * c2
-sz += f * c3
-"""
-NFW_DENSITY_TAIL = """
-k = -p[0] * p[4] * (p[4] * p[4])
-ax += (g + k * sx) * X
-ay += (g + k * sy) * Y
-az += (g + k * sz) * Z
-"""
+def _lane_text(text: str) -> str:
+    """Lane statements written with x, y, z, renamed to X, Y, Z."""
+    return ast.unparse(_Positions().visit(ast.parse(text)))
+
+
+def _is_zero_guard(st) -> str | None:
+    """The guarded name of ``if v == 0.0: return 0.0, 0.0, 0.0``, else None."""
+    if not (isinstance(st, ast.If) and not st.orelse and len(st.body) == 1):
+        return None
+    t, ret = st.test, st.body[0]
+    if not (isinstance(t, ast.Compare) and isinstance(t.left, ast.Name) and len(t.ops) == 1
+            and isinstance(t.ops[0], ast.Eq) and isinstance(t.comparators[0], ast.Constant)
+            and t.comparators[0].value == 0.0):
+        return None
+    if not (isinstance(ret, ast.Return) and isinstance(ret.value, ast.Tuple)
+            and all(isinstance(e, ast.Constant) and e.value == 0.0 for e in ret.value.elts)):
+        return None
+    return t.left.id
+
+
+def translate_accel(fn) -> str:
+    """Lane statements of a scalar force declaration ``fn(p, aux, x, y, z)`` (the rules are in
+    ``swerve.galaxy.formulas``): assignments kept, a zero guard turned into a floor, the final
+    ``return gx, gy, gz`` into ``ax += gx`` and so on."""
+    py = getattr(fn, "py_func", fn)
+    tree = ast.parse(textwrap.dedent(inspect.getsource(py)))
+    (fdef,) = tree.body
+    where = f"{py.__module__}.{py.__name__}"
+    if [a.arg for a in fdef.args.args] != ["p", "aux", "x", "y", "z"]:
+        raise ValueError(f"{where}: expected the arguments (p, aux, x, y, z)")
+    body = list(fdef.body)
+    if body and isinstance(body[0], ast.Expr) and isinstance(body[0].value, ast.Constant):
+        body = body[1:]  # the docstring
+    out: list[ast.stmt] = []
+    for i, st in enumerate(body):
+        last = i == len(body) - 1
+        guarded = _is_zero_guard(st)
+        if guarded is not None:
+            floor = ast.Name("_TINY2" if guarded.endswith("2") else "_TINY", ast.Load())
+            prev = out[-1] if out else None
+            if (isinstance(prev, ast.Assign) and len(prev.targets) == 1
+                    and isinstance(prev.targets[0], ast.Name) and prev.targets[0].id == guarded):
+                prev.value = ast.Call(ast.Name("max", ast.Load()), [prev.value, floor], [])
+            else:
+                out.append(ast.Assign([ast.Name(guarded, ast.Store())],
+                                      ast.Call(ast.Name("max", ast.Load()),
+                                               [ast.Name(guarded, ast.Load()), floor], []),
+                                      lineno=0))
+        elif isinstance(st, ast.Assign):
+            for node in ast.walk(st.value):
+                if isinstance(node, ast.Call) and ast.unparse(node.func) not in _CALLS:
+                    raise ValueError(
+                        f"{where}: cannot translate the call {ast.unparse(node)}; inline it or "
+                        "give the kind's lane statements in its COMPONENT_KINDS entry")
+            out.append(st)
+        elif last and isinstance(st, ast.Return) and isinstance(st.value, ast.Tuple) \
+                and len(st.value.elts) == 3:
+            for acc, e in zip(("ax", "ay", "az"), st.value.elts):
+                out.append(ast.AugAssign(ast.Name(acc, ast.Store()), ast.Add(), e))
+        else:
+            raise ValueError(f"{where}: cannot translate {ast.unparse(st)!r} (rules in "
+                             "swerve.galaxy.formulas)")
+    return _lane_text(ast.unparse(ast.Module(body=out, type_ignores=[])))
 
 
 def gen_accel():
@@ -183,24 +189,26 @@ def gen_accel():
          "    zero = S.splat(0.0)", "    ax = zero", "    ay = zero", "    az = zero",
          "    for i in range(kinds.shape[0]):", "        kind = kinds[i]", "        p = pars[i]"]
     base = {"X", "Y", "Z", "ax", "ay", "az", "zero"}
-    first = True
-    for kind, text in FORCE.items():
-        L.append(f"        {'if' if first else 'elif'} kind == {kind}:")
-        first = False
-        L += Lanes(base).stmts(text, " " * 12)
-    L.append("        elif kind == KIND_NFW_DENSITY_FLAT:")
-    L.append("            if p[2] == 0.0:")
-    L += Lanes(base).stmts(NFW_DENSITY_SPHERICAL, " " * 16)
-    L.append("            else:")
-    tr = Lanes(base)
-    L += tr.stmts(NFW_DENSITY_HEAD, " " * 16)
-    L += ["                off = int(p[7])", "                j = off + 1",
-          "                for _ in range(int(aux[off])):",
-          "                    c1 = aux[j]", "                    c2 = aux[j + 1]",
-          "                    c3 = aux[j + 2]", "                    wk = aux[j + 3]"]
-    L += tr.stmts(NFW_DENSITY_NODE, " " * 20)
-    L.append("                    j += 4")
-    L += tr.stmts(NFW_DENSITY_TAIL, " " * 16)
+    for code, k in enumerate(kernels.COMPONENT_KINDS):
+        L.append(f"        {'if' if code == 0 else 'elif'} kind == {k.name}:")
+        if k.lanes is None:
+            L += Lanes(base).stmts(translate_accel(k.accel), " " * 12)
+        elif isinstance(k.lanes, str):
+            L += Lanes(base).stmts(_lane_text(k.lanes), " " * 12)
+        else:  # a node table in aux: spherical mode (p[2] == 0) and node-table mode
+            lanes = {part: _lane_text(k.lanes[part]) for part in ("spherical", "head", "node", "tail")}
+            L.append("            if p[2] == 0.0:")
+            L += Lanes(base).stmts(lanes["spherical"], " " * 16)
+            L.append("            else:")
+            tr = Lanes(base)
+            L += tr.stmts(lanes["head"], " " * 16)
+            L += ["                off = int(p[7])", "                j = off + 1",
+                  "                for _ in range(int(aux[off])):",
+                  "                    c1 = aux[j]", "                    c2 = aux[j + 1]",
+                  "                    c3 = aux[j + 2]", "                    wk = aux[j + 3]"]
+            L += tr.stmts(lanes["node"], " " * 20)
+            L.append("                    j += 4")
+            L += tr.stmts(lanes["tail"], " " * 16)
     L += ["        else:", "            nan = S.splat(math.nan)", "            ax = nan",
           "            ay = nan", "            az = nan", "    return ax, ay, az"]
     return L
@@ -261,10 +269,11 @@ def gen_step():
 
 
 HEADER = '''"""Lane kernels of the orbit engine: the Galaxy force and one DOP853 step for eight orbits at
-once, in explicit SIMD (:mod:`swerve.simd`).  GENERATED by ``dev/generate_lanes.py`` from
-scalar statements written there; edit that script, not this file.
+once, in explicit SIMD (:mod:`swerve.simd`).  GENERATED by ``dev/generate_lanes.py`` from the
+formula declarations of the component kinds (:data:`swerve.galaxy.kernels.COMPONENT_KINDS`) and
+the stepper's statements written there; edit those, not this file.
 
-Per lane the formulas are those of :mod:`swerve.galaxy.kernels`, :mod:`swerve.galaxy.expansion`
+Per lane the formulas are those of :mod:`swerve.galaxy.formulas`, :mod:`swerve.galaxy.expansion`
 and :func:`swerve.orbits._dop853_step`.  Per-lane branches are selects (both sides computed), so
 lanes never diverge inside a step, and the r = 0 guards are tiny floors (the force at the origin
 is still 0; the step's error norm floors its denominator the same way; a zero error stays 0).
@@ -275,38 +284,82 @@ import math
 import numba as nb
 
 from . import simd as S
-from .galaxy.kernels import (
-    KIND_HERNQUIST,
-    KIND_MIYAMOTO_NAGAI,
-    KIND_NFW_DENSITY_FLAT,
-    KIND_NFW_POTENTIAL_FLAT,
-    KIND_POINT_MASS,
+from .galaxy.dispatch import (
+{kinds}
 )
 
 _TINY = 1e-100
 _TINY2 = 1e-200
 
-_jit = nb.njit(cache=True, error_model="numpy", fastmath={"contract"})
+_jit = nb.njit(cache=True, error_model="numpy", fastmath={{"contract"}})
 
 
 '''
 
 
+def _kind_names() -> str:
+    return "\n".join(f"    {k.name}," for k in sorted(kernels.COMPONENT_KINDS, key=lambda k: k.name))
+
+
 def render() -> str:
     """The text of ``src/swerve/orbit_lanes.py``."""
-    return HEADER + "\n".join(gen_accel()) + "\n\n\n" + "\n".join(gen_step()) + "\n"
+    return (HEADER.format(kinds=_kind_names()) + "\n".join(gen_accel()) + "\n\n\n"
+            + "\n".join(gen_step()) + "\n")
+
+
+def render_dispatch() -> str:
+    """The text of ``src/swerve/galaxy/dispatch.py``: kind codes and the scalar dispatch."""
+    imports: dict[str, list[str]] = {}
+    for k in kernels.COMPONENT_KINDS:
+        for fn in (k.accel, k.potential):
+            py = getattr(fn, "py_func", fn)
+            module = py.__module__
+            if module.startswith("swerve.galaxy."):
+                module = "." + module[len("swerve.galaxy."):]
+            imports.setdefault(module, []).append(py.__name__)
+    # absolute imports first, then relative ones, each sorted
+    order = sorted(imports, key=lambda m: (m.startswith("."), m))
+    lines = ['"""Dispatch of the Galaxy\'s scalar force kernels over the component kinds.  GENERATED by',
+             "``dev/generate_lanes.py`` from :data:`swerve.galaxy.kernels.COMPONENT_KINDS`; edit that",
+             'table and the functions it names, not this file."""', "", "import math", "",
+             "import numba as nb", ""]
+    for m in order:
+        one = f"from {m} import {', '.join(sorted(imports[m]))}"
+        if len(one) <= 100:
+            lines.append(one)
+        else:
+            lines += [f"from {m} import ("] + [f"    {n}," for n in sorted(imports[m])] + [")"]
+    lines.append("")
+    for code, k in enumerate(kernels.COMPONENT_KINDS):
+        lines += [f"#: pars row: {k.pars}", f"{k.name} = {code}"]
+    lines += ["", '_jit = nb.njit(cache=True, fastmath=False, inline="always")', "", ""]
+    for what, ret, nan in (("accel", "Acceleration (ax, ay, az)", "math.nan, math.nan, math.nan"),
+                           ("potential", "Potential", "math.nan")):
+        lines += ["@_jit", f"def component_{what}(kind, p, aux, x, y, z):",
+                  f'    """{ret} of one component of kind ``kind`` at (x, y, z)."""']
+        for code, k in enumerate(kernels.COMPONENT_KINDS):
+            fn = getattr(k, what)
+            name = getattr(fn, "py_func", fn).__name__
+            lines += [f"    {'if' if code == 0 else 'elif'} kind == {k.name}:",
+                      f"        return {name}(p, aux, x, y, z)"]
+        lines += [f"    return {nan}", "", ""]
+    return "\n".join(lines[:-2]) + "\n"
 
 
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else argv
-    text = render()
+    outputs = ((OUT_DISPATCH, render_dispatch()), (OUT, render()))
     if argv == ["--check"]:
-        if OUT.read_text() != text:
-            print(f"{OUT} is out of date: run python dev/generate_lanes.py")
-            return 1
-        return 0
-    OUT.write_text(text)
-    print(f"wrote {OUT} ({len(text.splitlines())} lines)")
+        stale = [path for path, text in outputs if path.read_text() != text]
+        for path in stale:
+            print(f"{path} is out of date: run python dev/generate_lanes.py")
+        return 1 if stale else 0
+    if argv:
+        print("usage: python dev/generate_lanes.py [--check]")
+        return 2
+    for path, text in outputs:
+        path.write_text(text)
+        print(f"wrote {path} ({len(text.splitlines())} lines)")
     return 0
 
 

@@ -262,3 +262,53 @@ def test_round_trip_dict():
     g2 = Galaxy.from_dict(g.to_dict())
     assert g2.params == g.params
     assert g2.name == "swerve-mw-1+custom"
+
+
+# --- the table of component kinds and the formula declarations ---------------------------------------------
+def test_dispatch_follows_the_table_of_kinds(rng):
+    """Each kind code reaches the scalar functions its COMPONENT_KINDS row names (the generated
+    dispatch), bit for bit; an unknown code gives NaN."""
+    from swerve.galaxy import kernels
+
+    pars = np.array([3.0e5, 0.7, 0.26, 1.2, 0.0, 0.0, 0.0, 0.0])  # a valid row for kinds 0-4 (mode 0)
+    aux = np.zeros(1)
+    for code, k in enumerate(kernels.COMPONENT_KINDS):
+        assert getattr(kernels, k.name) == code
+        for x, y, z in _points(rng, 5):
+            assert kernels.component_accel(code, pars, aux, x, y, z) == k.accel(pars, aux, x, y, z)
+            assert kernels.component_potential(code, pars, aux, x, y, z) == k.potential(pars, aux, x, y, z)
+    n = len(kernels.COMPONENT_KINDS)
+    assert all(math.isnan(v) for v in kernels.component_accel(n, pars, aux, 1.0, 2.0, 3.0))
+    assert math.isnan(kernels.component_potential(n, pars, aux, 1.0, 2.0, 3.0))
+
+
+def test_nfw_helper_matches_high_precision_derivative():
+    """formulas.nfw_g is -(1/m) dPhi/dm = -(ln(1+m)/m^3 - 1/(m^2 (1+m))) of Phi = -ln(1+m)/m
+    (G M = r_s = 1), through its series branch (m < 1e-3) and the closed form: against the
+    closed form in 60-digit decimal arithmetic (where its cancellation costs nothing)."""
+    from decimal import Decimal, localcontext
+
+    from swerve.galaxy import formulas
+
+    with localcontext() as ctx:
+        ctx.prec = 60
+        for m in (1e-7, 1e-4, 9.99e-4, 1.001e-3, 0.1, 1.0, 30.0, 1e4):
+            d = Decimal(m)
+            ln = (1 + d).ln()
+            g = -(ln / d**3 - 1 / (d * d * (1 + d)))
+            assert formulas.nfw_g(m, 1.0, 1.0) == pytest.approx(float(g), rel=1e-12)
+            assert formulas.nfw_phi(m, 1.0, 1.0) == pytest.approx(float(-ln / d), rel=1e-13)
+
+
+def test_component_classes_register_by_kind_name():
+    from swerve.galaxy import HALO_FLATTENINGS, Component, component_class
+    from swerve.galaxy.components import COMPONENT_CLASSES
+
+    for cls in (PointMass, HernquistBulge, MiyamotoNagaiDisk, NFWHaloPotentialFlat):
+        assert component_class(cls.kind_name) is cls
+    assert HALO_FLATTENINGS["potential"] is NFWHaloPotentialFlat
+    with pytest.raises(ValueError, match="unknown component kind 'disc'"):
+        component_class("disc")
+    with pytest.raises(ValueError, match="already declared by HernquistBulge"):
+        type("Bulge2", (Component,), {"kind_name": "hernquist"})
+    assert COMPONENT_CLASSES["hernquist"] is HernquistBulge

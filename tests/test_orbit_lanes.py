@@ -186,6 +186,77 @@ def test_generated_lane_kernels_are_up_to_date():
     gen = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(gen)
     assert Path(orbit_lanes.__file__).read_text() == gen.render()
+    # and so is the scalar dispatch over the table of component kinds
+    from swerve.galaxy import dispatch
+
+    assert Path(dispatch.__file__).read_text() == gen.render_dispatch()
+
+
+def _generator():
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "dev" / "generate_lanes.py"
+    spec = importlib.util.spec_from_file_location("generate_lanes", path)
+    gen = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(gen)
+    return gen
+
+
+class _ScalarLanes:
+    """The lane operations on single floats (IEEE: each the same rounding as the scalar code)."""
+
+    add = staticmethod(lambda a, b: a + b)
+    sub = staticmethod(lambda a, b: a - b)
+    mul = staticmethod(lambda a, b: a * b)
+    div = staticmethod(lambda a, b: a / b)
+    sqrt = staticmethod(math.sqrt)
+    log1p = staticmethod(math.log1p)
+    maximum = staticmethod(max)
+    fabs = staticmethod(abs)
+    splat = staticmethod(float)
+    where_less = staticmethod(lambda u, c, a, b: a if u < c else b)
+
+
+@pytest.mark.parametrize("code", [0, 1, 2])
+def test_translated_declarations_are_the_scalar_formulas(code):
+    # the generator's translation of a kind's scalar force declaration, run on single floats:
+    # the same values as the declaration itself (bit for bit away from the origin; 0 at it,
+    # where the guard became a floor)
+    from swerve.galaxy import kernels
+
+    gen = _generator()
+    k = kernels.COMPONENT_KINDS[code]
+    assert k.lanes is None
+    lines = gen.Lanes({"X", "Y", "Z", "ax", "ay", "az"}).stmts(gen.translate_accel(k.accel), "")
+    body = "\n".join(lines)
+    p = np.array([4.0e5, 0.7, 0.26])
+    rng = np.random.default_rng(8)
+    pts = rng.normal(size=(50, 3)) * 10 ** rng.uniform(-4, 2, (50, 1))
+    for x, y, z in [(0.0, 0.0, 0.0), *pts]:
+        env = {"S": _ScalarLanes, "math": math, "p": p, "X": x, "Y": y, "Z": z,
+               "ax": 0.0, "ay": 0.0, "az": 0.0, "_TINY": 1e-100, "_TINY2": 1e-200}
+        exec(body, env)
+        want = k.accel.py_func(p, None, x, y, z)
+        assert (env["ax"], env["ay"], env["az"]) == want
+
+
+def test_translation_refuses_what_it_cannot_lower():
+    gen = _generator()
+
+    def calls_a_helper(p, aux, x, y, z):
+        g = helper(x)  # noqa: F821
+        return g * x, g * y, g * z
+
+    def branches(p, aux, x, y, z):
+        if x < 1.0:
+            return 1.0, 0.0, 0.0
+        return 0.0, 0.0, 0.0
+
+    with pytest.raises(ValueError, match="cannot translate the call helper"):
+        gen.translate_accel(calls_a_helper)
+    with pytest.raises(ValueError, match="cannot translate"):
+        gen.translate_accel(branches)
 
 
 def test_group_size_is_whole_lanes_and_bounded():

@@ -19,7 +19,6 @@ from .model import (
 from .nfw_density import NFWHaloDensityFlat
 from .params import Parameter
 
-HALO_FLATTENINGS["density"] = NFWHaloDensityFlat
 
 __all__ = [
     "Component",

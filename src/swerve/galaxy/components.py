@@ -2,7 +2,11 @@
 
 Every component declares its parameters once (:class:`~swerve.galaxy.params.Parameter`); the
 base class owns validation, ``repr``, serialisation and evaluation over arrays, each subclass
-only its compiled row (:meth:`Component._compile`) and its analytic density.
+only its compiled row (:meth:`Component._compile`, naming its kind in
+:data:`swerve.galaxy.kernels.COMPONENT_KINDS`) and its analytic density.  A subclass that
+declares a ``kind_name`` is registered under it (:data:`COMPONENT_CLASSES`, read by
+:func:`swerve.galaxy.component_class` and ``Galaxy.from_dict``); one that declares a
+``halo_flattening`` is also a halo of the named models (:data:`HALO_FLATTENINGS`).
 """
 
 from __future__ import annotations
@@ -18,6 +22,11 @@ from . import kernels
 from .params import Parameter
 
 _NO_AUX = np.zeros(0)
+
+#: component classes by kind name (as written in files), filled as the classes are defined
+COMPONENT_CLASSES: dict[str, type] = {}
+#: halo component classes by halo flattening (the ``halo`` of the named Galaxy models)
+HALO_FLATTENINGS: dict[str, type] = {}
 
 
 def _as_points(pos) -> np.ndarray:
@@ -39,6 +48,20 @@ class Component:
     kind_name: ClassVar[str] = ""
     #: True when the density is spherically symmetric for every parameter value
     always_spherical: ClassVar[bool] = True
+    #: for a halo: its flattening's name in :data:`HALO_FLATTENINGS` (e.g. "potential")
+    halo_flattening: ClassVar[str | None] = None
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        for attr, registry in (("kind_name", COMPONENT_CLASSES), ("halo_flattening", HALO_FLATTENINGS)):
+            key = cls.__dict__.get(attr)
+            if not key:
+                continue
+            if key in registry and registry[key].__qualname__ != cls.__qualname__:
+                raise ValueError(
+                    f"{cls.__name__}: {attr} {key!r} is already declared by {registry[key].__name__}"
+                )
+            registry[key] = cls
 
     def __init__(self, **values):
         known = {p.name: p for p in self.parameters}
@@ -200,6 +223,7 @@ class NFWHaloPotentialFlat(Component):
     """
 
     kind_name = "nfw_potential_flattened"
+    halo_flattening = "potential"
     parameters = (
         _mass("m_halo", 0.76e12, "NFW scale mass 4 pi rho_0 r_s^3",
               "Rossi et al. 2017, MNRAS 467, 1844 (from memory)", high=1e15),

@@ -32,25 +32,9 @@ import math
 
 import numba as nb
 
+from .formulas import NFW_G_LANES, nfw_g, nfw_phi
+
 _jit = nb.njit(cache=True, inline="always")
-
-
-@_jit
-def _nfw_g(r, rs, gm):
-    """-(1/r) dPhi/dr of the spherical NFW Phi = -GM ln(1+r/rs)/r (acceleration = g * x)."""
-    u = r / rs
-    if u < 1e-3:
-        f = 0.5 + u * (-2.0 / 3.0 + u * (0.75 + u * (-0.8 + u * (5.0 / 6.0 + u * (-6.0 / 7.0)))))
-        return -gm * f / (rs * rs * r)
-    return -gm * (math.log1p(u) / (r * r) - 1.0 / (r * (rs + r))) / r
-
-
-@_jit
-def _nfw_phi(r, rs, gm):
-    u = r / rs
-    if u < 1e-6:
-        return -gm / rs * (1.0 - 0.5 * u + u * u / 3.0)
-    return -gm * math.log1p(u) / r
 
 
 @nb.njit(cache=True, fastmath=True, error_model="numpy")
@@ -91,11 +75,11 @@ def expansion_accel(p, aux, x, y, z):
         return 0.0, 0.0, 0.0
     r = math.sqrt(r2)
     if p[2] == 0.0:
-        g = _nfw_g(r, p[1], p[0])
+        g = nfw_g(r, p[1], p[0])
         return g * x, g * y, g * z
     L = p[3]
     b = 1.0 / (1.0 + r / L)
-    g = _nfw_g(r, L, p[0]) - 2.0 * p[0] * p[5] / (L * L) * b * b * b / r
+    g = nfw_g(r, L, p[0]) - 2.0 * p[0] * p[5] / (L * L) * b * b * b / r
     inv = p[4]
     x2 = x * x * inv * inv
     y2 = y * y * inv * inv
@@ -111,7 +95,7 @@ def expansion_potential(p, aux, x, y, z):
     """Potential of the density-flattened NFW halo at (x, y, z) (kpc), zero at infinity."""
     r = math.sqrt(x * x + y * y + z * z)
     if p[2] == 0.0:
-        return _nfw_phi(r, p[1], p[0])
+        return nfw_phi(r, p[1], p[0])
     inv = p[4]
     x2 = x * x * inv * inv
     y2 = y * y * inv * inv
@@ -126,4 +110,43 @@ def expansion_potential(p, aux, x, y, z):
         j += 4
     L = p[3]
     b = 1.0 / (1.0 + r / L)
-    return -p[0] * inv * s + _nfw_phi(r, L, p[0]) - p[0] * p[5] / L * b * b
+    return -p[0] * inv * s + nfw_phi(r, L, p[0]) - p[0] * p[5] / L * b * b
+
+
+# --- lane form (dev/generate_lanes.py): spherical mode, then the node-table mode as the statements
+# before the loop over nodes, the statements per node (c1, c2, c3, wk: that node's row) and the
+# statements after it; the same formulas as above, G M and 1/r_s multiplied in another order
+LANES_SPHERICAL = f"""
+r = max(math.sqrt(x * x + y * y + z * z), _TINY)
+u = r / p[1]
+g = {NFW_G_LANES.format(m="r", rs="p[1]")}
+ax += g * x
+ay += g * y
+az += g * z
+"""
+LANES_HEAD = f"""
+r = max(math.sqrt(x * x + y * y + z * z), _TINY)
+u = r / p[3]
+b = 1.0 / (1.0 + u)
+g = {NFW_G_LANES.format(m="r", rs="p[3]")} - 2.0 * p[0] * p[5] / (p[3] * p[3]) * b * b * b / r
+x2 = x * x * (p[4] * p[4])
+y2 = y * y * (p[4] * p[4])
+z2 = z * z * (p[4] * p[4])
+sx = 0.0 * x
+sy = 0.0 * x
+sz = 0.0 * x
+"""
+LANES_NODE = """
+v = max(math.sqrt(x2 * c1 + y2 * c2 + z2 * c3), _TINY)
+t = v + 1.0
+f = wk / (v * t * t)
+sx += f * c1
+sy += f * c2
+sz += f * c3
+"""
+LANES_TAIL = """
+k = -p[0] * p[4] * (p[4] * p[4])
+ax += (g + k * sx) * x
+ay += (g + k * sy) * y
+az += (g + k * sz) * z
+"""

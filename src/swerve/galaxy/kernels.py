@@ -4,7 +4,8 @@ A Galaxy compiles to three plain arrays, so one compiled routine serves every Ga
 orbit engine never calls Python per step:
 
 ``kinds`` : int64 array (n_comp,)
-    Component kind codes (the ``KIND_*`` constants below).
+    Component kind codes: the index of the kind in :data:`COMPONENT_KINDS` (the ``KIND_*``
+    constants).
 ``pars`` : float64 array (n_comp, N_PAR)
     Per-component numbers, layout documented beside each kind; masses enter as G*M in
     kpc (km/s)^2.
@@ -17,102 +18,102 @@ Units: positions kpc, potentials (km/s)^2, accelerations (km/s)^2 / kpc.
 
 from __future__ import annotations
 
-import math
+from collections.abc import Callable
+from dataclasses import dataclass
 
 import numba as nb
 import numpy as np
 
-from .expansion import expansion_accel as _density_flat_accel
-from .expansion import expansion_potential as _density_flat_potential
+from . import expansion, formulas
+from .dispatch import (  # generated from COMPONENT_KINDS by dev/generate_lanes.py
+    KIND_HERNQUIST,
+    KIND_MIYAMOTO_NAGAI,
+    KIND_NFW_DENSITY_FLAT,
+    KIND_NFW_POTENTIAL_FLAT,
+    KIND_POINT_MASS,
+    component_accel,
+    component_potential,
+)
+
+__all__ = [
+    "COMPONENT_KINDS",
+    "KIND_HERNQUIST",
+    "KIND_MIYAMOTO_NAGAI",
+    "KIND_NFW_DENSITY_FLAT",
+    "KIND_NFW_POTENTIAL_FLAT",
+    "KIND_POINT_MASS",
+    "N_PAR",
+    "KernelKind",
+    "accel",
+    "accel_many",
+    "component_accel",
+    "component_potential",
+    "potential",
+    "potential_many",
+]
 
 N_PAR = 8
 
-#: pars row: [GM]
-KIND_POINT_MASS = 0
-#: pars row: [GM, a]
-KIND_HERNQUIST = 1
-#: pars row: [GM, a, b]
-KIND_MIYAMOTO_NAGAI = 2
-#: pars row: [GM, r_s, 1/q_y^2, 1/q_z^2]; Phi = -GM ln(1 + m/r_s) / m, m^2 = x^2 + y^2/q_y^2 + z^2/q_z^2
-KIND_NFW_POTENTIAL_FLAT = 3
-#: pars row: layout owned by swerve.galaxy.expansion (a multipole expansion stored in aux)
-KIND_NFW_DENSITY_FLAT = 4
+
+@dataclass(frozen=True)
+class KernelKind:
+    """One component kind of the compiled Galaxy: a row of :data:`COMPONENT_KINDS`.
+
+    Parameters
+    ----------
+    name : str
+        Name of its code constant (``KIND_...``, written into :mod:`swerve.galaxy.dispatch`);
+        the code is the row's index.
+    pars : str
+        Layout of its ``pars`` row.
+    accel, potential : numba functions ``(p, aux, x, y, z)``
+        Its scalar acceleration (returns ``(ax, ay, az)``) and potential.
+    lanes : str or dict or None
+        Its lane form for ``dev/generate_lanes.py``: None to translate ``accel`` (the rules are
+        in :mod:`swerve.galaxy.formulas`), a string of lane statements, or, for a kind that
+        reads a node table from ``aux``, a dict of statement strings ``spherical`` (when
+        ``p[2] == 0``), ``head``, ``node`` (once per node row ``c1, c2, c3, wk`` of
+        ``aux[int(p[7]) + 1:]``, ``int(aux[int(p[7])])`` rows) and ``tail``.
+    """
+
+    name: str
+    pars: str
+    accel: Callable
+    potential: Callable
+    lanes: str | dict | None = None
+
+
+#: The component kinds, in code order: the one table from kind code to kernels.  The scalar
+#: dispatch (:mod:`swerve.galaxy.dispatch`) and the orbit engine's lanes
+#: (:mod:`swerve.orbit_lanes`) are generated from it by ``dev/generate_lanes.py``.
+COMPONENT_KINDS: tuple[KernelKind, ...] = (
+    KernelKind("KIND_POINT_MASS", "[GM]",
+               formulas.point_mass_accel, formulas.point_mass_potential),
+    KernelKind("KIND_HERNQUIST", "[GM, a]",
+               formulas.hernquist_accel, formulas.hernquist_potential),
+    KernelKind("KIND_MIYAMOTO_NAGAI", "[GM, a, b]",
+               formulas.miyamoto_nagai_accel, formulas.miyamoto_nagai_potential),
+    KernelKind("KIND_NFW_POTENTIAL_FLAT", "[GM, r_s, 1/q_y^2, 1/q_z^2]",
+               formulas.nfw_potential_flat_accel, formulas.nfw_potential_flat_potential,
+               lanes=formulas.NFW_POTENTIAL_FLAT_LANES),
+    KernelKind("KIND_NFW_DENSITY_FLAT", "layout owned by swerve.galaxy.expansion",
+               expansion.expansion_accel, expansion.expansion_potential,
+               lanes={"spherical": expansion.LANES_SPHERICAL, "head": expansion.LANES_HEAD,
+                      "node": expansion.LANES_NODE, "tail": expansion.LANES_TAIL}),
+)
 
 _jit = nb.njit(cache=True, fastmath=False, inline="always")
+
+# the NFW helpers under their former names (formulas.nfw_g is the force factor, negative)
+_density_flat_accel = expansion.expansion_accel
+_density_flat_potential = expansion.expansion_potential
+_nfw_phi = formulas.nfw_phi
 
 
 @_jit
 def _nfw_dphi_dm_over_m(m, rs, gm):
-    """(1/m) dPhi/dm of Phi(m) = -GM ln(1+m/rs)/m, stable as m -> 0."""
-    u = m / rs
-    if u < 1e-3:
-        # series of ln(1+u)/u^2 - 1/(u(1+u)) = sum_n (-1)^n (n+1)/(n+2) u^n
-        f = 0.5 + u * (-2.0 / 3.0 + u * (0.75 + u * (-0.8 + u * (5.0 / 6.0 + u * (-6.0 / 7.0)))))
-        return gm * f / (rs * rs * m)
-    return gm * (math.log1p(u) / (m * m) - 1.0 / (m * (rs + m))) / m
-
-
-@_jit
-def _nfw_phi(m, rs, gm):
-    u = m / rs
-    if u < 1e-6:
-        return -gm / rs * (1.0 - 0.5 * u + u * u / 3.0)
-    return -gm * math.log1p(u) / m
-
-
-@_jit
-def component_accel(kind, p, aux, x, y, z):
-    """Acceleration (ax, ay, az) of one component at (x, y, z)."""
-    if kind == KIND_POINT_MASS:
-        r2 = x * x + y * y + z * z
-        if r2 == 0.0:
-            return 0.0, 0.0, 0.0
-        r = math.sqrt(r2)
-        f = -p[0] / (r2 * r)
-        return f * x, f * y, f * z
-    elif kind == KIND_HERNQUIST:
-        r = math.sqrt(x * x + y * y + z * z)
-        if r == 0.0:
-            return 0.0, 0.0, 0.0
-        s = r + p[1]
-        f = -p[0] / (s * s * r)
-        return f * x, f * y, f * z
-    elif kind == KIND_MIYAMOTO_NAGAI:
-        zeta = math.sqrt(z * z + p[2] * p[2])
-        az_ = p[1] + zeta
-        d2 = x * x + y * y + az_ * az_
-        f = -p[0] / (d2 * math.sqrt(d2))
-        return f * x, f * y, f * z * az_ / zeta
-    elif kind == KIND_NFW_POTENTIAL_FLAT:
-        m = math.sqrt(x * x + y * y * p[2] + z * z * p[3])
-        if m == 0.0:
-            return 0.0, 0.0, 0.0
-        g = -_nfw_dphi_dm_over_m(m, p[1], p[0])
-        return g * x, g * y * p[2], g * z * p[3]
-    elif kind == KIND_NFW_DENSITY_FLAT:
-        return _density_flat_accel(p, aux, x, y, z)
-    return math.nan, math.nan, math.nan
-
-
-@_jit
-def component_potential(kind, p, aux, x, y, z):
-    """Potential of one component at (x, y, z)."""
-    if kind == KIND_POINT_MASS:
-        r = math.sqrt(x * x + y * y + z * z)
-        return -p[0] / r
-    elif kind == KIND_HERNQUIST:
-        r = math.sqrt(x * x + y * y + z * z)
-        return -p[0] / (r + p[1])
-    elif kind == KIND_MIYAMOTO_NAGAI:
-        zeta = math.sqrt(z * z + p[2] * p[2])
-        az_ = p[1] + zeta
-        return -p[0] / math.sqrt(x * x + y * y + az_ * az_)
-    elif kind == KIND_NFW_POTENTIAL_FLAT:
-        m = math.sqrt(x * x + y * y * p[2] + z * z * p[3])
-        return _nfw_phi(m, p[1], p[0])
-    elif kind == KIND_NFW_DENSITY_FLAT:
-        return _density_flat_potential(p, aux, x, y, z)
-    return math.nan
+    """(1/m) dPhi/dm of Phi(m) = -GM ln(1+m/rs)/m, stable as m -> 0 (``-formulas.nfw_g``)."""
+    return -formulas.nfw_g(m, rs, gm)
 
 
 @_jit

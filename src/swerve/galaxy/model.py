@@ -5,28 +5,21 @@ from __future__ import annotations
 import copy
 import math
 import warnings
-from typing import Iterable
+from collections.abc import Iterable
 
 import numpy as np
 
 from .. import units
 from . import kernels
-from .components import (
-    Component,
-    HernquistBulge,
-    MiyamotoNagaiDisk,
-    NFWHaloPotentialFlat,
-    PointMass,
-    _as_points,
-)
+from .components import COMPONENT_CLASSES, HALO_FLATTENINGS, Component, _as_points
 
 
 class NegativeDensityWarning(UserWarning):
     """A requested domain or an orbit reaches a region where the model's density is negative."""
 
 
-#: halo component classes by flattening; "density" is registered by swerve.galaxy.nfw_density
-HALO_FLATTENINGS: dict[str, type[Component]] = {"potential": NFWHaloPotentialFlat}
+# HALO_FLATTENINGS (halo component classes by flattening) and COMPONENT_CLASSES (component
+# classes by kind name) are filled by the component classes themselves (components.py)
 
 #: Named, versioned Galaxy models. Each value of each model carries its source in the
 #: component's parameter declaration; outputs record the resolved name, never "latest".
@@ -50,22 +43,18 @@ GALAXY_MODELS: dict[str, dict] = {
 #: the name of the default Galaxy model
 DEFAULT_GALAXY = "swerve-mw-1"
 
-_COMPONENT_KINDS: dict[str, type[Component]] = {
-    "point_mass": PointMass,
-    "hernquist": HernquistBulge,
-    "miyamoto_nagai": MiyamotoNagaiDisk,
-    "nfw_potential_flattened": NFWHaloPotentialFlat,
-}
+#: former name of the registry of component classes by kind name
+_COMPONENT_KINDS = COMPONENT_CLASSES
 
 
 def component_class(kind: str) -> type[Component]:
     """The component class of a kind name (as written in files)."""
-    classes = dict(_COMPONENT_KINDS)
-    classes.update({cls.kind_name: cls for cls in HALO_FLATTENINGS.values()})
     try:
-        return classes[kind]
+        return COMPONENT_CLASSES[kind]
     except KeyError:
-        raise ValueError(f"unknown component kind {kind!r}; expected one of {sorted(classes)}") from None
+        raise ValueError(
+            f"unknown component kind {kind!r}; expected one of {sorted(COMPONENT_CLASSES)}"
+        ) from None
 
 
 class Galaxy:
@@ -119,7 +108,7 @@ class Galaxy:
         comps = []
         remaining = dict(params)
         for kind, values in spec["components"]:
-            ccls = HALO_FLATTENINGS[flat] if kind == "halo" else _COMPONENT_KINDS[kind]
+            ccls = HALO_FLATTENINGS[flat] if kind == "halo" else COMPONENT_CLASSES[kind]
             vals = dict(values)
             for p in ccls.parameters:
                 if p.name in remaining:
@@ -136,7 +125,7 @@ class Galaxy:
         """The default Galaxy (:data:`DEFAULT_GALAXY`), with optional parameter changes."""
         return cls.from_name(DEFAULT_GALAXY, **params)
 
-    def with_params(self, **params) -> "Galaxy":
+    def with_params(self, **params) -> Galaxy:
         """A copy with some parameters changed (validated)."""
         comps = []
         remaining = dict(params)
@@ -175,7 +164,7 @@ class Galaxy:
         }
 
     @classmethod
-    def from_dict(cls, d: dict) -> "Galaxy":
+    def from_dict(cls, d: dict) -> Galaxy:
         comps = [component_class(c["kind"])(**c["params"]) for c in d["components"]]
         return cls(comps, name=d.get("name", "custom"), halo_flattening=d.get("halo_flattening"))
 
@@ -317,5 +306,5 @@ class Galaxy:
             return True
         return False
 
-    def copy(self) -> "Galaxy":
+    def copy(self) -> Galaxy:
         return copy.deepcopy(self)

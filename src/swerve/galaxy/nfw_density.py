@@ -181,6 +181,7 @@ class NFWHaloDensityFlat(Component):
     """
 
     kind_name = "nfw_density_flattened"
+    halo_flattening = "density"
     always_spherical = False
     parameters = NFWHaloPotentialFlat.parameters
 
