@@ -16,6 +16,7 @@ default likelihood exactly. It is ~40× slower than the default and not part of 
 calibration run is swerve validate with the fits' likelihood replaced.
 """
 import numpy as np
+
 import swerve.likelihood as L
 from swerve.summaries import stats_to_gaussian
 

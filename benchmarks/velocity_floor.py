@@ -53,7 +53,7 @@ def main():
     print(f"load average {os.getloadavg()[0]:.2f}; N = {args.n_stars}, errors {args.errors!r}, "
           f"{args.catalogs} catalogs per halo, {args.samples} distance samples per star")
     t0 = time.perf_counter()
-    stars, truths = [], []
+    stars = []
     for g in halos:  # the same catalogs for every floor
         gal_t, lau_t = _grid_theta(setup, emu, 1.0, g)
         gal = setup.galaxy_at(gal_t)

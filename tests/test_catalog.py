@@ -150,8 +150,10 @@ def test_csv_units_option_and_defaults(tmp_path):
         np.testing.assert_allclose(cat.distance, np.asarray(ref["distance"]), rtol=1e-12)
         np.testing.assert_allclose(cat.distance_err, np.asarray(ref["distance_err"]), rtol=1e-12)
         np.testing.assert_allclose(cat.pmra, np.asarray(ref["pmra"]), rtol=1e-12)  # default mas/yr
-    cat = read_catalog(path)  # the documented default kpc: 1000 times larger
-    np.testing.assert_allclose(cat.distance, 1000.0 * np.asarray(ref["distance"]), rtol=1e-12)
+    # the documented default kpc would make them 20-80 Mpc away: refused with a hint at pc
+    probs = problems_of(path)
+    assert probs[0].column == "distance" and "pc read as kpc" in str(probs[0])
+    assert "--units distance=pc" in probs[0].expected
 
 
 def test_column_mapping(tmp_path):
@@ -194,8 +196,10 @@ def test_options_from_toml_config(tmp_path):
 def test_option_parsing_errors():
     assert parse_columns("ra=RA, dec = DE") == {"ra": "RA", "dec": "DE"}
     assert parse_units("pmra=mas/yr")["pmra"] == u.mas / u.yr
-    with pytest.raises(ValueError, match="not of the form"):
+    with pytest.raises(ValueError, match="neither name=value nor a preset"):
         parse_columns("ra")
+    with pytest.raises(ValueError, match="not of the form"):
+        parse_columns("dec=DE,ra")
     with pytest.raises(ValueError, match="unknown column name"):
         parse_columns("rightasc=RA")
     with pytest.raises(ValueError, match="not a unit"):
@@ -322,11 +326,15 @@ def test_non_positive_uncertainty(err):
     assert (p.row, p.column, p.value) == (1, err, 0.0)
 
 
-def test_non_positive_parallax_needs_a_distance():
+def test_non_positive_parallax_is_a_measurement():
+    """A parallax <= 0 is data (Gaia-like catalogs have many): read, not refused, with or
+    without a distance; draw_samples decides what it can do with it."""
     t = make_table(3, parallax=True, distance=False)
     t["parallax"][1] = -0.3
-    p = one_problem(t)
-    assert (p.row, p.column) == (2, "parallax") and "positive parallax" in p.expected
+    t["parallax"][2] = 0.0
+    cat = catalog_from_table(t)
+    np.testing.assert_array_equal(cat.parallax, [0.5, -0.3, 0.0])
+    assert cat.has_parallax.all()
     t = make_table(3, parallax=True, distance=True)
     t["parallax"][1] = -0.3  # fine beside a distance
     cat = catalog_from_table(t)
@@ -743,3 +751,146 @@ def test_distance_source_choice():
     t2["parallax"][1] = -0.1  # allowed beside a distance, but cannot give one
     with pytest.raises(ValueError, match=r"star 'hvs2'.*not positive"):
         draw_samples(catalog_from_table(t2), 5, np.random.default_rng(9), distance_source="parallax")
+
+
+# ------------------------------------------------------------------------------------------
+# parallaxes as data: negative and low signal-to-noise parallaxes under a distance prior
+
+
+def _quadrature_posterior(plx, sig, prior, L=10.0, dmax=300.0):
+    """Posterior of the distance, pi(d) N(plx | 1/d, sig), normalised by direct quadrature on
+    the prior's support, written here independently of swerve (Bailer-Jones 2015, PASP 127,
+    994: uniform-volume and exponentially decreasing space density priors)."""
+    from scipy.integrate import quad
+
+    hi = dmax if prior == "uniform-volume" else 100.0 * L
+
+    def dens(d):
+        pr = d * d * math.exp(-d / L) if prior == "exponential-length" else d * d
+        return pr * math.exp(-0.5 * ((plx - 1.0 / d) / sig) ** 2)
+
+    # break points where the integrand changes fastest: near 1/plx and the prior's scale
+    pts = sorted({x for x in (1.0 / plx if plx > 0 else None, L, 2 * L, 4 * L) if x and 0 < x < hi})
+    z = quad(dens, 0.0, hi, points=pts, limit=500, epsabs=0)[0]
+
+    def cdf(x):
+        return quad(dens, 0.0, x, points=[p for p in pts if p < x], limit=500, epsabs=0)[0] / z
+
+    return dens, z, cdf
+
+
+@pytest.mark.parametrize("prior", ["exponential-length", "uniform-volume"])
+@pytest.mark.parametrize("plx,sig", [(-0.12, 0.1), (0.0, 0.05), (0.03, 0.06), (0.15, 0.05), (0.08, 0.004)])
+def test_parallax_posterior_samples_match_quadrature(prior, plx, sig):
+    """Weighted draws of d (weights exp(log_prior)) follow pi(d) N(plx | 1/d, sig): compared
+    with the posterior CDF by quadrature at five distances, for negative, zero, low and high
+    signal-to-noise parallaxes. The proposal is tabulated from the posterior, so the weights
+    are nearly even (effective sample size > 95% of K)."""
+    L, dmax, k = 10.0, 300.0, 40000
+    cat = single_star(parallax=plx, parallax_err=sig, corr_parallax_pmra=0.0, corr_parallax_pmdec=0.0)
+    s = draw_samples(cat, k, np.random.default_rng(11), distance_prior=prior, distance_source="parallax",
+                     length_scale=L, max_distance=dmax)
+    w = np.exp(s.log_prior[0] - s.log_prior[0].max())
+    w /= w.sum()
+    assert 1.0 / np.sum(w * w) > 0.95 * k
+    d = s.distance[0]
+    assert d.min() > 0 and d.max() <= (dmax if prior == "uniform-volume" else 100 * L) * (1 + 1e-12)
+    _, _, cdf = _quadrature_posterior(plx, sig, prior, L, dmax)
+    order = np.argsort(d)
+    cum = np.cumsum(w[order])
+    for q in (0.1, 0.3, 0.5, 0.7, 0.9):
+        x = d[order][np.searchsorted(cum, q)]  # the weighted sample quantile q
+        # the CDF of the exact posterior at the sample quantile: q within sampling error
+        # (sd of a quantile's CDF value sqrt(q(1-q)/K) <= 0.0025; 5 sd)
+        assert abs(cdf(x) - q) < 0.0125, (q, x, cdf(x))
+
+
+@pytest.mark.parametrize("plx,sig,L", [(-0.05, 0.1, 1.35), (0.1, 0.05, 10.0), (0.02, 0.04, 30.0),
+                                       (0.5, 0.02, 10.0), (-0.3, 0.2, 5.0)])
+def test_exponential_prior_mode_is_bailer_jones_cubic_root(plx, sig, L):
+    """The mode of the distance posterior under the exponentially decreasing space density
+    prior solves d^3/L - 2 d^2 + (plx/sig^2) d - 1/sig^2 = 0 (Bailer-Jones 2015, PASP 127, 994;
+    the cubic from memory, and checked: setting d/dd [2 ln d - d/L - (plx - 1/d)^2 / (2 sig^2)]
+    = 0 and multiplying by -d^3 gives it). swerve's posterior density (parallax_log_posterior
+    moved to distance) and its weighted samples must peak there."""
+    from swerve.catalog import parallax_log_posterior
+
+    roots = np.roots([1.0 / L, -2.0, plx / sig**2, -1.0 / sig**2])
+    real = roots[np.abs(roots.imag) < 1e-9].real
+    real = real[(real > 0) & (real < 100 * L)]
+
+    def logp(d):
+        return parallax_log_posterior(1.0 / d, plx, sig, "exponential-length", length_scale=L) - 2 * np.log(d)
+
+    mode = real[np.argmax(logp(real))]  # with three real roots, the higher of the two maxima
+    grid = np.geomspace(1e-3, 100 * L, 400001)
+    g = grid[np.argmax(logp(grid))]
+    assert abs(g - mode) < 3e-5 * mode  # the grid's relative spacing is 2.3e-5
+    # and the weighted samples' distance posterior puts its highest density there too
+    cat = single_star(parallax=plx, parallax_err=sig, corr_parallax_pmra=0.0, corr_parallax_pmdec=0.0)
+    s = draw_samples(cat, 200000, np.random.default_rng(12), distance_prior="exponential-length",
+                     distance_source="parallax", length_scale=L)
+    w = np.exp(s.log_prior[0] - s.log_prior[0].max())
+    edges = np.geomspace(mode / 3, mode * 3, 41)
+    h, _ = np.histogram(s.distance[0], bins=edges, weights=w)
+    dens = h / np.diff(edges)
+    peak = np.sqrt(edges[:-1] * edges[1:])[np.argmax(dens)]
+    assert abs(np.log(peak / mode)) < 2 * np.log(3) / 40 + 1e-12  # within two bins
+
+
+def test_none_prior_refuses_negative_parallax_and_names_the_fix():
+    cat = single_star(parallax=-0.2, parallax_err=0.1, distance=np.nan, distance_err=np.nan)
+    with pytest.raises(ValueError, match=r"not positive.*--distance-prior.*1 of 1 parallax star"):
+        draw_samples(cat, 10, np.random.default_rng(0))
+    # the same star under a volume prior: its distance is drawn, weighted
+    s = draw_samples(cat, 10, np.random.default_rng(0), distance_prior="exponential-length")
+    assert s.from_parallax[0] and np.all(np.isfinite(s.log_weight))
+
+
+def test_parallax_zero_point(tmp_path):
+    t = make_table(3, parallax=True, distance=False)
+    path = write(tmp_path, t, "ecsv")
+    ref = read_catalog(path)
+    cat = read_catalog(path, parallax_zero_point=-0.017)  # Gaia EDR3's global offset (Lindegren+ 2021)
+    np.testing.assert_allclose(cat.parallax, ref.parallax + 0.017, rtol=0, atol=1e-15)
+    np.testing.assert_array_equal(cat.parallax_err, ref.parallax_err)
+    assert cat.meta["swerve_parallax_zero_point_mas"] == -0.017
+    assert "swerve_parallax_zero_point_mas" not in ref.meta  # nothing applied by default
+    q = read_catalog(path, parallax_zero_point=-17 * u.uas)
+    np.testing.assert_allclose(q.parallax, cat.parallax, rtol=1e-12)
+    assert options_from_config({"parallax_zero_point": -0.017})["parallax_zero_point"] == -0.017
+    for bad in (float("nan"), "0.01", 1 * u.km, True):
+        with pytest.raises(ValueError, match="parallax_zero_point"):
+            read_catalog(path, parallax_zero_point=bad)
+    # the samples see the corrected parallax: same draws, shifted true parallax mean
+    a = draw_samples(ref, 20000, np.random.default_rng(3), distance_source="parallax")
+    b = draw_samples(cat, 20000, np.random.default_rng(3), distance_source="parallax")
+    shift = np.mean(1 / b.distance, axis=1) - np.mean(1 / a.distance, axis=1)
+    np.testing.assert_allclose(shift, 0.017, atol=5 * 0.02 / math.sqrt(20000))
+
+
+def test_distance_information_counts_prior_dominated_stars():
+    from swerve.catalog import distance_information, distance_warning
+
+    t = make_table(6, parallax=True)
+    t["parallax"] = [0.5, 0.04, -0.02, 0.0, 0.3, 0.05]
+    t["parallax_err"] = [0.02, 0.02, 0.02, 0.02, 0.1, 0.01]  # S/N 25, 2, -1, 0, 3, 5
+    t["distance"] = MaskedColumn(np.asarray(t["distance"]), mask=[True, True, True, True, False, True],
+                                 unit=u.kpc)
+    t["distance_err"] = MaskedColumn(np.asarray(t["distance_err"]), mask=t["distance"].mask, unit=u.kpc)
+    cat = catalog_from_table(t)
+    info = distance_information(cat)
+    assert (info["from_distance"], info["from_parallax"], info["prior_dominated"],
+            info["non_positive_parallax"]) == (1, 5, 3, 2)
+    assert info["prior_dominated_ids"] == ["hvs2", "hvs3", "hvs4"]
+    text = distance_warning(cat, "exponential-length")
+    assert text.startswith("3 of 6 stars") and "exponential-length" in text  # half: not "most"
+    assert distance_info_most(cat, distance_warning)
+    assert distance_warning(catalog_from_table(make_table(3)), "none") is None  # distances only
+    with pytest.raises(ValueError, match="distance_source"):
+        distance_information(cat, "nearest")
+
+
+def distance_info_most(cat, distance_warning):
+    text = distance_warning(cat, "uniform-volume", distance_source="parallax", min_snr=30.0)
+    return text.startswith("most distances are prior-dominated: 6 of 6 stars") and "--distance-prior" in text

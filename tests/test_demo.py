@@ -6,10 +6,9 @@ import json
 import pytest
 from astropy.table import Table
 
+from conftest import ROOT
 from swerve.cli import main
 from swerve.emulate import load
-
-from conftest import ROOT
 
 EMULATOR = ROOT / "emulators" / "default"
 DEMO = ROOT / "examples" / "demo.ecsv"

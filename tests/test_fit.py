@@ -49,7 +49,8 @@ def test_fit_writes_the_run_folder(tmp_path, smoke_run, mock_catalog):
     rec = json.loads((out / "fit.json").read_text())
     assert len(rec["emulator"]["content_hash"]) == 64 and rec["solar"]["name"] == "v4.0"
     stars = Table.read(out / "stars.ecsv")
-    assert len(stars) == s["stars"]["used"] and "dloglike_vs_spherical" in stars.colnames
+    assert int(stars["used"].sum()) == s["stars"]["used"] and "dloglike_vs_spherical" in stars.colnames
+    assert len(stars) == s["stars"]["used"] + len(s["stars"]["excluded"])  # the excluded stars are rows too
     assert "q_z" in outcome.terminal and "68% interval" in outcome.terminal
 
 

@@ -12,9 +12,9 @@ from swerve.frames import (
     DEFAULT_SOLAR,
     SolarParameters,
     folded_v_theta,
-    galacto_to_helio,
     galactic_coordinates,
     galactic_latitude,
+    galacto_to_helio,
     helio_to_galacto,
     spherical_components,
 )
@@ -246,7 +246,12 @@ def test_spherical_analytic_cases():
 
 
 def test_spherical_against_astropy_representation():
-    from astropy.coordinates import CartesianDifferential, CartesianRepresentation, PhysicsSphericalDifferential, PhysicsSphericalRepresentation
+    from astropy.coordinates import (
+        CartesianDifferential,
+        CartesianRepresentation,
+        PhysicsSphericalDifferential,
+        PhysicsSphericalRepresentation,
+    )
 
     rng = np.random.default_rng(8)
     pos = rng.normal(0, 20, (500, 3))

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import Galactocentric, SkyCoord, CartesianDifferential, CartesianRepresentation
+from astropy.coordinates import CartesianDifferential, CartesianRepresentation, Galactocentric, SkyCoord
 
 from swerve.galaxy import Galaxy
 from swerve.selection import EmptySelectionError, Selection

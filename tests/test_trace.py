@@ -1,6 +1,7 @@
 """swerve trace: back-integration of candidates, checked against analytic results and the
 forward model (stars launched from the Galactic Centre by swerve.population.make_mock)."""
 
+import argparse
 from pathlib import Path
 
 import numpy as np
@@ -92,7 +93,7 @@ def test_zero_mass_galaxy_flight_time_is_distance_over_speed(tmp_path):
     path = _catalog_from_galacto(tmp_path / "radial.ecsv", r[:, None] * u, speed[:, None] * u)
     args = ["trace", str(path), "--samples", "32", "--out", str(tmp_path / "t.ecsv"), "--no-plot", "--no-progress"]
     for name, value in ZERO_MASS.items():
-        args += ["--galaxy-param", f"{name}={value:g}"]
+        args += ["--param", f"{name}={value:g}"]
     assert main(args) == 0
     t = Table.read(tmp_path / "t.ecsv")
     assert np.all(t["p_origin"] == 1.0)
@@ -144,7 +145,9 @@ def test_backward_path_matches_gala():
     assert c - b * b / (4 * a) == pytest.approx(r_ours, rel=1e-4)
     assert 0.1 < r_ours < 0.5
     # implied launch speed at 3 pc with gala's potential
-    phi = lambda p: float(pot.energy(np.asarray(p)[:, None] * u.kpc).to_value(u.km**2 / u.s**2)[0])
+    def phi(p):
+        return float(pot.energy(np.asarray(p)[:, None] * u.kpc).to_value(u.km**2 / u.s**2)[0])
+
     v_l = np.sqrt(v @ v + 2.0 * (phi(x) - phi(0.003 * x / np.linalg.norm(x))))
     assert float(res.sample_v_launch[0, 0]) == pytest.approx(v_l, rel=1e-9)
 
@@ -232,12 +235,13 @@ def test_trace_help_documents_every_option(capsys):
     assert exc.value.code == 0
     text = capsys.readouterr().out
     options = [s for a in sub._actions for s in a.option_strings if s.startswith("--")]
-    for needed in ("--galaxy-param", "--halo-flattening", "--samples", "--radius", "--max-time", "--out", "--plot",
+    for needed in ("--param", "--halo-flattening", "--samples", "--radius", "--max-time", "--out", "--plot",
                    "--columns", "--units", "--drop-invalid", "--seed", "--distance-prior", "--solar"):
         assert needed in options
     for a in sub._actions:
-        if a.option_strings:
+        if a.option_strings and a.help != argparse.SUPPRESS:  # hidden: deprecated old spellings
             assert a.help and all(s in text for s in a.option_strings), a.option_strings
+    assert "--galaxy-param" in options and "--galaxy-param" not in text  # the old spelling, hidden
 
 
 def test_bad_catalog_reports_every_problem_and_writes_nothing(tmp_path, capsys):
@@ -261,7 +265,7 @@ def test_bad_catalog_reports_every_problem_and_writes_nothing(tmp_path, capsys):
 
 def test_trace_demo_writes_table_and_plot(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
-    rc = main(["trace", str(DEMO), "--samples", "12", "--seed", "5", "--galaxy-param", "q_z=0.9", "--top", "5",
+    rc = main(["trace", str(DEMO), "--samples", "12", "--seed", "5", "--param", "q_z=0.9", "--top", "5",
                "--no-progress"])
     text = capsys.readouterr().out
     assert rc == 0
@@ -275,9 +279,10 @@ def test_trace_demo_writes_table_and_plot(tmp_path, monkeypatch, capsys):
     p = np.asarray(t["p_origin"])
     assert np.all((p >= 0) & (p <= 1)) and np.all(np.isnan(t["t_flight"]) == (t["n_pass"] == 0))
     assert "P_origin > 0.5" in text and "more stars in the table" in text
-    # reproducible: the same seed gives the same table
+    # reproducible: the same seed gives the same table; the deprecated --galaxy-param still works
     assert main(["trace", str(DEMO), "--samples", "12", "--seed", "5", "--galaxy-param", "q_z=0.9",
                  "--out", "again.ecsv", "--no-plot", "--no-progress"]) == 0
+    assert "--galaxy-param is deprecated; use --param" in capsys.readouterr().err
     again = Table.read(tmp_path / "again.ecsv")
     assert np.array_equal(np.asarray(again["t_flight"]), np.asarray(t["t_flight"]), equal_nan=True)
 
@@ -294,7 +299,7 @@ def test_bad_arguments_are_refused_with_one_line(tmp_path, capsys, monkeypatch):
         trace_orbits(g, pos, vel, np.ones(3))
     for extra, message in ((["--radius", "-1"], "--radius -1.0: expected a positive number"),
                            (["--samples", "0"], "--samples 0"),
-                           (["--galaxy-param", "q_w=1"], "unknown Galaxy parameter"),
+                           (["--param", "q_w=1"], "unknown Galaxy parameter"),
                            (["--out", str(tmp_path / "t.csv")], "expected a file name ending in .ecsv")):
         assert main(["trace", str(DEMO), "--no-progress", "--no-plot", *extra]) == 1
         err = capsys.readouterr().err

@@ -7,12 +7,11 @@ import json
 import numpy as np
 import pytest
 
+from conftest import ROOT
 from swerve.cli import main
 from swerve.config import config_hash
 from swerve.simulate import load_training_config, simulate_point, training_table
 from swerve.training import collect, make_design, run_design
-
-from conftest import ROOT
 
 SMOKE = ROOT / "training" / "smoke.toml"
 

@@ -346,7 +346,7 @@ def test_sigkill_then_resume_loses_and_repeats_nothing(tmp_path):
     after = _mtimes(run_dir)
     assert all(after[k] == before[k] for k in before)
     assert all((run_dir / "points" / k).read_bytes() == contents[k] for k in before)
-    assert not list((run_dir / "points").glob("*.tmp"))
+    assert not list((run_dir / "points").glob(".point_*"))  # no temporary file of a killed write left
     # and the result equals an uninterrupted run
     run_design(toy_task, pts, names, tmp_path / "clean", HASH, MASTER, backend="serial",
                progress=False)
@@ -371,7 +371,8 @@ def test_damaged_point_files_are_recomputed(tmp_path):
                progress=False)
     (points / "point_00004.npz").write_bytes(
         (tmp_path / "other" / "points" / "point_00004.npz").read_bytes())
-    # a stale temp file from a killed write
+    # stale temp files from killed writes (swerve.fileio's naming, and an older one's)
+    (points / ".point_00005.npz.abc123.npz").write_bytes(b"partial")
     (points / ".point_00005.npz.abc123.tmp").write_bytes(b"partial")
     status = run_status(run_dir)
     assert status.missing == (1, 3, 4) and status.finished == (0, 2, 5)
@@ -388,7 +389,7 @@ def test_damaged_point_files_are_recomputed(tmp_path):
                          progress=False)
     assert (summary.n_invalid, summary.n_computed, summary.n_skipped) == (3, 3, 3)
     assert all(_mtimes(run_dir)[k] == t for k, t in kept.items())
-    assert not list(points.glob("*.tmp"))
+    assert not list(points.glob(".point_*"))
     _assert_same_outputs(collect(run_dir), reference)
 
 

@@ -239,10 +239,9 @@ def test_histogram_gradient_in_the_cell_means(rng):
 
 def test_star_beyond_the_histogram_is_reported(rng):
     """A star faster than the histogram's last edge is excluded with its reason, never used."""
-    from test_likelihood import _catalog  # toy catalog with v_r ≈ 500 km/s
-
     from swerve.catalog import draw_samples
     from swerve.likelihood import prepare_stars
+    from test_likelihood import _catalog  # toy catalog with v_r ≈ 500 km/s
 
     cat, _ = _catalog(rng, n=5)
     spec = SummarySpec(r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0), vr_edges=(0.0, 200.0, 400.0))

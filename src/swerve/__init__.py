@@ -1,7 +1,8 @@
 """swerve: emulator-accelerated inference of the Milky Way's dark-matter halo shape
 from the bent paths of hypervelocity stars."""
 
-from importlib.metadata import PackageNotFoundError, version as _version
+from importlib.metadata import PackageNotFoundError
+from importlib.metadata import version as _version
 
 try:
     __version__ = _version("swerve")

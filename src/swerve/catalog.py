@@ -14,7 +14,7 @@ column                      physical type     default     meaning
 ``ra``, ``dec``             angle             deg         ICRS position; ra in [0, 360), dec in [-90, 90]
 ``distance``                length            kpc         heliocentric distance, > 0
 ``distance_err``            length            kpc         its 1-sigma uncertainty, > 0
-``parallax``                angle             mas         parallax
+``parallax``                angle             mas         parallax (may be <= 0: a measurement)
 ``parallax_err``            angle             mas         its 1-sigma uncertainty, > 0
 ``pmra``, ``pmra_err``      angle / time      mas / yr    proper motion in ra, *including* cos(dec)
 ``pmdec``, ``pmdec_err``    angle / time      mas / yr    proper motion in dec
@@ -25,7 +25,10 @@ column                      physical type     default     meaning
 ==========================  ================  ==========  ========================================
 
 A catalog needs ``distance`` + ``distance_err`` or ``parallax`` + ``parallax_err`` (or both; with
-both, a row may leave one pair empty). Other columns are never an error: they are carried
+both, a row may leave one pair empty). A parallax may be zero or negative: it is used as a
+measurement under a distance prior (:func:`draw_samples`); ``parallax_zero_point`` corrects
+every parallax for a zero point. ``columns="gaia"`` reads Gaia's own column names
+(:data:`COLUMN_PRESETS`). Other columns are never an error: they are carried
 along, unvalidated, in :attr:`Catalog.extra`. Units come from the file where it has them and
 are converted to the units above; a unit of the wrong physical type is a problem. Where the
 file has none (CSV) the ``units`` argument (``{"distance": "pc"}``, or the string
@@ -45,7 +48,15 @@ Every problem in a file is collected before anything is refused: a :class:`Catal
 With ``drop_invalid=True`` rows with problems are dropped instead, and the problems are
 returned in :attr:`Catalog.problems` (and logged at WARNING level); problems that concern a
 whole column (a missing column, a wrong unit) still refuse the file. Unreadable files raise a
-one-line :class:`CatalogError` naming the file.
+one-line :class:`CatalogError` naming the file (also a directory, and a CSV or ECSV header that
+names a column twice). Rows are numbered from the first data row (row 1) in every format.
+
+Values that are numbers in range but implausible are refused too: ra and dec that all look
+like radians (ra <= 2 pi, |dec| <= pi/2, three rows or more) or distances above 1 Mpc, where
+the unit was not stated (the default was assumed: state it with ``units``; where the file
+states the unit they are only warned about, in :attr:`Catalog.hints`), and any speed at or
+above the speed of light (a line-of-sight velocity, a proper motion faster than light beyond
+1 pc, or the total speed at the star's distance).
 
 Error samples
 -------------
@@ -68,6 +79,7 @@ from astropy import units as u
 
 __all__ = [
     "COLUMNS",
+    "COLUMN_PRESETS",
     "DISTANCE_PRIORS",
     "FORMATS",
     "Catalog",
@@ -75,8 +87,12 @@ __all__ = [
     "ErrorSamples",
     "Problem",
     "catalog_from_table",
+    "check_parallaxes",
+    "distance_information",
+    "distance_warning",
     "draw_samples",
     "options_from_config",
+    "parallax_log_posterior",
     "parse_columns",
     "parse_units",
     "read_catalog",
@@ -145,6 +161,33 @@ _UNIT_FORMATS = {"ascii.ecsv", "fits", "votable"}
 
 #: Distance priors for stars whose distance comes from the parallax (see :func:`draw_samples`).
 DISTANCE_PRIORS = ("none", "uniform-volume", "exponential-length")
+
+#: Built-in column mappings ``{our_name: file_column}``, used as ``columns="gaia"``.
+#:
+#: ``"gaia"``: the column names of Gaia DR3's ``gaia_source`` table (Gaia DR3 documentation,
+#: gaia_source data model; names from memory): ``source_id`` (kept whole as the id: a 64-bit
+#: integer, never passed through a float), ``ra``, ``dec`` (deg), ``parallax``,
+#: ``parallax_error`` (mas), ``pmra``, ``pmra_error``, ``pmdec``, ``pmdec_error`` (mas/yr,
+#: pmra including cos(dec)), ``radial_velocity``, ``radial_velocity_error`` (km/s) and the
+#: correlations ``pmra_pmdec_corr``, ``parallax_pmra_corr``, ``parallax_pmdec_corr``. Gaia's
+#: units are swerve's defaults, so a CSV export needs no ``units``. Gaia's parallaxes are not
+#: corrected for their zero point: see ``parallax_zero_point`` of :func:`read_catalog`.
+COLUMN_PRESETS: dict[str, dict[str, str]] = {
+    "gaia": {
+        "id": "source_id",
+        "parallax_err": "parallax_error",
+        "pmra_err": "pmra_error",
+        "pmdec_err": "pmdec_error",
+        "vlos": "radial_velocity",
+        "vlos_err": "radial_velocity_error",
+        "corr_pmra_pmdec": "pmra_pmdec_corr",
+        "corr_parallax_pmra": "parallax_pmra_corr",
+        "corr_parallax_pmdec": "parallax_pmdec_corr",
+    },
+}
+
+#: Speed of light, km/s (exact, SI definition).
+SPEED_OF_LIGHT_KMS = 299792.458
 
 _PHYSICAL = {
     "angle": u.deg,
@@ -275,17 +318,44 @@ def _check_names(mapping: Mapping, option: str) -> None:
         )
 
 
+def _split_preset(text: str) -> tuple[dict[str, str], str]:
+    """A leading preset name in a ``columns`` string: (its mapping, the rest of the string)."""
+    head, sep, rest = text.strip().partition(",")
+    head = head.strip()
+    if head and "=" not in head:
+        if head.lower() not in COLUMN_PRESETS:
+            raise ValueError(f"columns: {head!r} is neither name=value nor a preset; the presets are "
+                             f"{', '.join(COLUMN_PRESETS)}")
+        return dict(COLUMN_PRESETS[head.lower()]), rest
+    return {}, text
+
+
 def parse_columns(spec) -> dict[str, str]:
     """Column mapping ``{our_name: file_column}`` from a dict or a string ``"ra=RA_deg,dec=DE"``.
+
+    The string may start with a preset name from :data:`COLUMN_PRESETS` (``"gaia"``, or
+    ``"gaia,vlos=rv_template"`` to change one of its entries).
 
     Raises
     ------
     ValueError
-        On a malformed entry or a name that is not one of :data:`COLUMNS`.
+        On a malformed entry, an unknown preset or a name that is not one of :data:`COLUMNS`.
+
+    Examples
+    --------
+    >>> parse_columns("gaia,vlos=rv_template")["vlos"]
+    'rv_template'
+    >>> parse_columns("gaia")["id"]
+    'source_id'
     """
     if spec is None:
         return {}
-    mapping = _parse_pairs(spec, "columns") if isinstance(spec, str) else spec
+    if isinstance(spec, str):
+        base, rest = _split_preset(spec)
+        base.update(_parse_pairs(rest, "columns"))
+        mapping = base
+    else:
+        mapping = spec
     if not isinstance(mapping, Mapping):
         raise ValueError(f"columns: expected a mapping or a string, got {type(spec).__name__}")
     _check_names(mapping, "columns")
@@ -336,9 +406,10 @@ def parse_units(spec) -> dict[str, u.UnitBase]:
 def options_from_config(table: Mapping) -> dict:
     """Reading options from a config file's ``[catalog]`` table (already parsed TOML).
 
-    Accepted keys: ``columns`` (table or string), ``units`` (table or string),
-    ``drop_invalid`` (bool), ``require_units`` (bool). Returns a dict of keyword arguments
-    for :func:`read_catalog`.
+    Accepted keys: ``columns`` (table or string, possibly a preset such as ``"gaia"``),
+    ``units`` (table or string), ``drop_invalid`` (bool), ``require_units`` (bool),
+    ``parallax_zero_point`` (number, mas). Returns a dict of keyword arguments for
+    :func:`read_catalog`.
 
     Examples
     --------
@@ -347,7 +418,7 @@ def options_from_config(table: Mapping) -> dict:
     """
     if not isinstance(table, Mapping):
         raise ValueError(f"[catalog]: expected a table, got {type(table).__name__}")
-    allowed = {"columns", "units", "drop_invalid", "require_units"}
+    allowed = {"columns", "units", "drop_invalid", "require_units", "parallax_zero_point"}
     extra = sorted(set(table) - allowed)
     if extra:
         raise ValueError(f"[catalog]: unknown key(s) {', '.join(extra)}; "
@@ -362,6 +433,9 @@ def options_from_config(table: Mapping) -> dict:
             if not isinstance(table[key], bool):
                 raise ValueError(f"[catalog] {key}: expected true or false, got {table[key]!r}")
             out[key] = table[key]
+    if "parallax_zero_point" in table:
+        out["parallax_zero_point"] = _zero_point(table["parallax_zero_point"],
+                                                 "[catalog] parallax_zero_point")
     return out
 
 
@@ -382,7 +456,9 @@ class Catalog:
     distance, distance_err : array of float
         Heliocentric distance and uncertainty, kpc; NaN where the star has none.
     parallax, parallax_err : array of float
-        Parallax and uncertainty, mas; NaN where the star has none.
+        Parallax and uncertainty, mas; NaN where the star has none. The parallax may be zero
+        or negative (a measurement); it is corrected by ``parallax_zero_point`` where one was
+        given to :func:`read_catalog`.
     pmra, pmra_err, pmdec, pmdec_err : array of float
         Proper motions (pmra includes cos(dec)) and uncertainties, mas/yr.
     vlos, vlos_err : array of float
@@ -404,6 +480,9 @@ class Catalog:
     extra : dict of str to array
         The file's other columns (kept rows only), unvalidated, as numpy arrays (masked
         arrays where the file masks values).
+    hints : tuple of str
+        Plausibility warnings that did not refuse the file (values that look like radians or
+        pc although the file states degrees or kpc); also logged at WARNING level.
     """
 
     ids: np.ndarray
@@ -429,6 +508,7 @@ class Catalog:
     units: dict = field(default_factory=dict)
     meta: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
+    hints: tuple = ()
 
     @property
     def n(self) -> int:
@@ -473,6 +553,7 @@ def read_catalog(
     units=None,
     drop_invalid: bool = False,
     require_units: bool | None = None,
+    parallax_zero_point=0.0,
 ) -> Catalog:
     """Read and validate an observed catalog.
 
@@ -493,6 +574,13 @@ def read_catalog(
     require_units : bool, optional
         Whether a quantity column needs a unit in the file or in ``units``. Default: True for
         ECSV, FITS and VOTable, False for CSV.
+    parallax_zero_point : float or Quantity ['angle']
+        Parallax zero point Z, mas: every parallax is replaced by ``parallax - Z`` (the
+        uncertainties are unchanged). Default 0: nothing is applied unless asked. For Gaia
+        EDR3/DR3, Lindegren et al. 2021 (A&A 649, A4) find a global offset of about
+        -0.017 mas from quasars (so ``parallax_zero_point=-0.017`` adds 0.017 mas); their
+        correction depends on magnitude, colour and position, which swerve does not model.
+        Recorded in :attr:`Catalog.meta` as ``swerve_parallax_zero_point_mas``.
 
     Returns
     -------
@@ -501,15 +589,27 @@ def read_catalog(
     Raises
     ------
     CatalogError
-        Listing every problem found, or (one line) when the file cannot be read at all.
+        Listing every problem found, or (one line) when the file cannot be read at all: not a
+        file (a directory, a missing path), an unknown extension, or a CSV/ECSV header that
+        names a column twice.
     ValueError
         For a malformed ``columns`` or ``units`` option.
+
+    Notes
+    -----
+    Rows are numbered in swerve's own way in every message and in :attr:`Catalog.rows`: the
+    first data row is row 1, whatever the format (header and comment lines are not counted;
+    in a CSV with a one-line header, row N is line N + 1 of the file).
     """
     columns = parse_columns(columns)
     units = parse_units(units)
+    zp = _zero_point(parallax_zero_point, "parallax_zero_point")
     name = os.fspath(path) if isinstance(path, (str, os.PathLike)) else None
     if name is None:
         raise ValueError(f"path: expected a file name, got {type(path).__name__}")
+    if os.path.isdir(name):
+        raise _file_error(name, "a directory, not a catalog file",
+                          "a catalog file (" + ", ".join(sorted(FORMATS)) + ")")
     fmt = _format_of(name)
     if fmt is None:
         raise _file_error(name, "unknown file type",
@@ -518,11 +618,52 @@ def read_catalog(
         raise _file_error(name, "no such file", "an existing catalog file")
     if os.path.getsize(name) == 0:
         raise _file_error(name, "empty file", f"a table ({fmt})")
+    if fmt in ("ascii.csv", "ascii.ecsv"):
+        _check_header_names(name, fmt)
     table = _read_table(name, fmt)
     if require_units is None:
         require_units = fmt in _UNIT_FORMATS
     return catalog_from_table(table, columns=columns, units=units, drop_invalid=drop_invalid,
-                              require_units=require_units, source=name)
+                              require_units=require_units, source=name, parallax_zero_point=zp)
+
+
+def _zero_point(value, option: str) -> float:
+    """A parallax zero point in mas (a number or an angle Quantity), finite."""
+    if isinstance(value, u.Quantity):
+        if not value.unit.is_equivalent(u.mas) or not value.isscalar:
+            raise ValueError(f"{option}: expected an angle (like 'mas'), got {value!r}")
+        value = float(value.to_value(u.mas))
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.number)) or not math.isfinite(value):
+        raise ValueError(f"{option}: expected a finite number of mas, got {value!r}")
+    return float(value)
+
+
+def _check_header_names(name: str, fmt: str) -> None:
+    """Refuse a CSV/ECSV file whose header names a column twice (astropy would rename the second
+    one, ``ra`` -> ``ra_1``, and the file would be read as if nothing were wrong)."""
+    import csv
+
+    try:
+        with open(name, encoding="utf-8", newline="") as fh:
+            for line in fh:
+                if line.strip() and not line.lstrip().startswith("#"):
+                    break
+            else:
+                return
+    except (OSError, UnicodeDecodeError):
+        return  # reported by the reader, with its own message
+    if fmt == "ascii.csv" or "," in line:
+        names = next(csv.reader([line]), [])
+    else:
+        names = next(csv.reader([line], delimiter=" ", skipinitialspace=True), [])
+    names = [n.strip() for n in names if n.strip()]
+    seen: set[str] = set()
+    for col in names:
+        if col in seen:
+            raise CatalogError([Problem(name, None, None, None, None,
+                                        "a header naming each column once",
+                                        what=f"header: column {col!r} appears {names.count(col)} times")])
+        seen.add(col)
 
 
 def _read_table(name: str, fmt: str):
@@ -556,6 +697,7 @@ def catalog_from_table(
     drop_invalid: bool = False,
     require_units: bool = False,
     source: str = "<table>",
+    parallax_zero_point=0.0,
 ) -> Catalog:
     """Validate an in-memory astropy Table and make a :class:`Catalog`.
 
@@ -564,6 +706,7 @@ def catalog_from_table(
     """
     columns = parse_columns(columns)
     units = parse_units(units)
+    zp = _zero_point(parallax_zero_point, "parallax_zero_point")
     try:
         names = list(table.colnames)
         nrows = len(table)
@@ -575,6 +718,7 @@ def catalog_from_table(
     if nrows == 0:
         raise _file_error(source, "no data rows", "at least one star")
     v = _Validator(table, source, columns, units, require_units)
+    v.zero_point = zp
     return v.run(drop_invalid)
 
 
@@ -595,6 +739,9 @@ class _Validator:
         self.missing: dict[str, np.ndarray] = {}  # masked / NaN / empty per row
         self.bad: dict[str, np.ndarray] = {}  # unreadable or infinite per row (already reported)
         self.unit_used: dict[str, str] = {}
+        self.unit_stated: dict[str, bool] = {}  # unit from the file or units=, not the default
+        self.hints: list[str] = []
+        self.zero_point = 0.0
         self.pending: dict[str, list] = {}  # missing-value problems, possibly waived
 
     # helpers ---------------------------------------------------------------------------------
@@ -636,7 +783,9 @@ class _Validator:
                     idbad.append((i, x))
                     continue
             if isinstance(x, (float, np.floating)):
-                if not math.isfinite(x):
+                if not math.isfinite(x) or abs(x) > 2.0**53:
+                    # above 2**53 a float cannot hold every integer: a 64-bit id (Gaia's
+                    # source_id) stored as a float has lost digits
                     idbad.append((i, float(x)))
                     continue
                 s = str(int(x)) if float(x).is_integer() else repr(float(x))
@@ -650,7 +799,11 @@ class _Validator:
                 continue
             self.ids[i] = s
         for i, x in idbad:
-            self.row_problem(i, "id", x, "a star identifier (string or integer)")
+            if isinstance(x, float) and math.isfinite(x):
+                self.row_problem(i, "id", x, "an integer or string identifier (a floating-point id above "
+                                 "2**53 has lost digits: store it as an integer or a string)")
+            else:
+                self.row_problem(i, "id", x, "a star identifier (string or integer)")
         first: dict[str, int] = {}
         for i, s in enumerate(self.ids):
             if s is None:
@@ -682,10 +835,13 @@ class _Validator:
                 self.col_problem(ours, str(file_unit), f"the unit given in units= ({given})",
                                  what=f"file unit {str(file_unit)!r} disagrees with units=")
                 return None
+            self.unit_stated[ours] = True
             return file_unit
         given = self.units.get(ours) or (self.units.get(base) if base else None)
         if given is not None:
+            self.unit_stated[ours] = True
             return given
+        self.unit_stated[ours] = False
         if spec.physical_type == "dimensionless":
             return u.dimensionless_unscaled
         if self.require_units:
@@ -818,13 +974,9 @@ class _Validator:
         if "distance" in V:
             for i in np.flatnonzero(self.usable("distance") & ~(V["distance"] > 0)):
                 self.row_problem(i, "distance", V["distance"][i], "a positive distance")
-        if "parallax" in V:
-            d_ok = self.pair_complete("distance", "distance_err")
-            if "distance" in V:
-                d_ok &= V["distance"] > 0
-            for i in np.flatnonzero(self.usable("parallax") & ~(V["parallax"] > 0) & ~d_ok):
-                self.row_problem(i, "parallax", V["parallax"][i],
-                                 "a positive parallax (or a distance for this star)")
+        # A parallax may be negative or zero: it is a measurement, and draw_samples uses it as one
+        # under a distance prior (refusing such rows would bias the sample toward near stars).
+        self.check_plausible()
         for c in _CORRS:
             if c in V:
                 for i in np.flatnonzero(self.usable(c) & ~(np.abs(V[c]) <= 1)):
@@ -853,6 +1005,73 @@ class _Validator:
                              "(parallax, pmra, pmdec)",
                              what=f"smallest correlation-matrix eigenvalue {lam[i]:.3g}")
 
+    def check_plausible(self):
+        """Values that are numbers in range but cannot be what the file means: coordinates in
+        radians, distances in pc read as kpc, speeds at or above the speed of light."""
+        V = self.values
+        c = SPEED_OF_LIGHT_KMS
+        if "ra" in V and "dec" in V:
+            ra, dec = V["ra"][self.usable("ra")], V["dec"][self.usable("dec")]
+            if (ra.size >= 3 and np.all(np.abs(ra) <= 2 * math.pi) and np.all(np.abs(dec) <= math.pi / 2)):
+                what = (f"every ra <= 2 pi and every |dec| <= pi/2 (largest ra {ra.max():.4g}, "
+                        f"largest |dec| {np.abs(dec).max():.4g}): radians read as degrees?")
+                if self.unit_stated.get("ra") or self.unit_stated.get("dec"):
+                    self.hints.append(f"{self.source}: {what} (the file states "
+                                      f"{self.unit_used.get('ra')!r}; check it)")
+                else:
+                    self.col_problem("ra", None, "ra and dec in degrees; state the unit with units= "
+                                     "(--units ra=rad,dec=rad, or ra=deg,dec=deg if degrees are meant)",
+                                     what=what)
+        for name in ("distance", "distance_err"):
+            if name not in V:
+                continue
+            d = V[name]
+            far = self.usable(name) & (d > 1000.0)
+            if far.any():
+                label = "distances" if name == "distance" else "distance uncertainties"
+                what = (f"{int(far.sum())} of {self.n} {label} above 1 Mpc (largest {np.nanmax(d[far]):.4g} "
+                        f"kpc): pc read as kpc?")
+                if self.unit_stated.get(name):
+                    self.hints.append(f"{self.source}: column {name!r}: {what} (the unit "
+                                      f"{self.unit_used.get(name)!r} is stated; check it)")
+                else:
+                    self.col_problem(name, None, "kpc; state the unit with units= (--units distance=pc, "
+                                     "or distance=kpc if kpc is meant)", what=what)
+        # speeds: a line-of-sight velocity (or its error) at or above c; a proper motion above
+        # c / (kappa * 1 pc) is faster than light at any distance beyond 1 pc; with a distance,
+        # the total speed it implies.
+        kappa = 4.740470463533348  # km/s per (kpc mas/yr)
+        pm_max = c / (kappa * 1e-3)
+        for name, limit, expected in (
+                ("vlos", c, "a speed below the speed of light (299792.458 km/s)"),
+                ("vlos_err", c, "an uncertainty below the speed of light (299792.458 km/s)"),
+                ("pmra", pm_max, f"a proper motion below {pm_max:.3g} mas/yr (faster than light beyond 1 pc)"),
+                ("pmdec", pm_max, f"a proper motion below {pm_max:.3g} mas/yr (faster than light beyond 1 pc)"),
+                ("pmra_err", pm_max, f"an uncertainty below {pm_max:.3g} mas/yr"),
+                ("pmdec_err", pm_max, f"an uncertainty below {pm_max:.3g} mas/yr")):
+            if name in V:
+                with np.errstate(all="ignore"):
+                    over = self.usable(name) & (np.abs(V[name]) >= limit)
+                for i in np.flatnonzero(over):
+                    self.row_problem(i, name, V[name][i], expected)
+        if all(n in V for n in ("pmra", "pmdec", "vlos")):
+            with np.errstate(all="ignore"):
+                pm = np.hypot(V["pmra"], V["pmdec"])
+                plx_d = np.full(self.n, np.nan)
+                if "parallax" in V and "parallax_err" in V:
+                    good = (V["parallax"] > 0) & (V["parallax"] >= 5 * V["parallax_err"])
+                    plx_d = np.where(good, 1.0 / V["parallax"], np.nan)
+                dist = V["distance"] if "distance" in V else np.full(self.n, np.nan)
+                from_d = np.isfinite(dist) & (dist > 0)
+                dist = np.where(from_d, dist, plx_d)
+                speed = np.hypot(kappa * dist * pm, V["vlos"])
+                ok = np.isfinite(speed) & (np.abs(V["vlos"]) < c) & (pm < pm_max)
+            for i in np.flatnonzero(ok & (speed >= c)):
+                src = "distance" if from_d[i] else "distance 1/parallax"
+                self.row_problem(i, "pmra/pmdec", float(speed[i]), "a speed below the speed of light "
+                                 "(299792.458 km/s)", what=f"total speed {speed[i]:.4g} km/s at the "
+                                 f"{src} = {dist[i]:.4g} kpc")
+
     # result ----------------------------------------------------------------------------------
     def build(self, drop_invalid) -> Catalog:
         problems = self.col_problems + sorted(self.row_problems, key=lambda p: (p.row, _col_order(p.column)))
@@ -877,11 +1096,17 @@ class _Validator:
             return a
 
         out = {name: arr(name) for name in _QUANTITIES if name not in _CORRS}
+        if self.zero_point:
+            out["parallax"] = out["parallax"] - self.zero_point  # NaN stays NaN
         for c in _CORRS:
             a = arr(c, 0.0)
             out[c] = np.where(np.isfinite(a), a, 0.0)  # only where the row has no parallax
         # A pair the row left empty stays NaN; a non-positive parallax beside a distance is kept.
         meta = dict(getattr(self.table, "meta", {}) or {})
+        if self.zero_point:
+            meta["swerve_parallax_zero_point_mas"] = self.zero_point
+        for h in self.hints:
+            logger.warning("%s", h)
         used = {self.file_name(c) for c in COLUMNS}
         extra = {}
         for name in self.table.colnames:
@@ -897,6 +1122,7 @@ class _Validator:
             dropped_rows=tuple(bad_rows),
             units=dict(self.unit_used),
             meta=meta,
+            hints=tuple(self.hints),
             extra=extra,
             **out,
         )
@@ -935,7 +1161,9 @@ class ErrorSamples:
     log_jacobian : array of shape (n, k)
         ``2 log(kappa d)``, the log of |det d(v)/d(pmra, pmdec, vlos)| at the sample's distance.
     log_prior : array of shape (n, k)
-        The distance-prior importance weight (0 for stars sampled from a distance Gaussian).
+        The distance part of the importance weight: log(posterior / proposal) of the sampled
+        parallax of a parallax star under a volume prior (nearly constant per star), 0 for
+        stars sampled from a distance Gaussian and under "none" (see :func:`draw_samples`).
     distance : array of shape (n, k)
         Sampled heliocentric distance, kpc.
     pmra, pmdec : arrays of shape (n, k)
@@ -1013,6 +1241,206 @@ def _truncnorm(mean, sd, low, k, rng):
     return np.maximum(out, np.nextafter(low, np.inf)[:, None])
 
 
+def distance_information(catalog: Catalog, distance_source: str = "auto", min_snr: float = 5.0) -> dict:
+    """Where each star's distance comes from, and how many are set mostly by the distance prior.
+
+    A star is *prior-dominated* when its distance comes from its parallax (see
+    ``distance_source`` of :func:`draw_samples`) and the parallax's signal-to-noise ratio
+    ``parallax / parallax_err`` is below ``min_snr`` (negative parallaxes included): its
+    distance posterior is then mostly the prior's shape (S/N 5 is a fractional parallax error
+    of 20%, a usual limit below which 1/parallax is not trusted: common practice).
+
+    Returns
+    -------
+    dict
+        ``n``, ``from_distance``, ``from_parallax``, ``prior_dominated``,
+        ``non_positive_parallax`` (counts), ``min_snr`` and ``prior_dominated_ids`` (all of them).
+    """
+    if distance_source not in ("auto", "distance", "parallax"):
+        raise ValueError(f"distance_source: expected 'auto', 'distance' or 'parallax', got {distance_source!r}")
+    has_d = catalog.has_distance
+    if distance_source == "distance":
+        use_p = np.zeros(catalog.n, dtype=bool)
+    elif distance_source == "parallax":
+        use_p = catalog.has_parallax
+    else:
+        use_p = ~has_d & catalog.has_parallax
+    with np.errstate(all="ignore"):
+        snr = catalog.parallax / catalog.parallax_err
+    weak = use_p & ~(snr >= min_snr)
+    return {
+        "n": catalog.n,
+        "from_distance": int((has_d & ~use_p).sum()),
+        "from_parallax": int(use_p.sum()),
+        "prior_dominated": int(weak.sum()),
+        "non_positive_parallax": int((use_p & ~(catalog.parallax > 0)).sum()),
+        "min_snr": float(min_snr),
+        "prior_dominated_ids": [str(x) for x in catalog.ids[weak]],
+    }
+
+
+def check_parallaxes(catalog: Catalog, distance_prior: str, distance_source: str = "auto",
+                     max_fractional_parallax_error: float = 0.2) -> None:
+    """Refuse parallaxes that ``distance_prior="none"`` cannot use (see :func:`draw_samples`).
+
+    Under "none" (distance = 1/parallax) a star whose distance comes from its parallax needs a
+    positive parallax with ``parallax_err / parallax <= max_fractional_parallax_error``. The
+    one-line ValueError names the first such star and counts them all; nothing to check under
+    the volume priors, which use every parallax.
+    """
+    if distance_prior != "none":
+        return
+    if distance_source == "distance":
+        use_p = np.zeros(catalog.n, dtype=bool)
+    elif distance_source == "parallax":
+        use_p = np.ones(catalog.n, dtype=bool)
+    else:
+        use_p = ~catalog.has_distance
+    use_p &= catalog.has_parallax
+    if not use_p.any():
+        return
+    with np.errstate(all="ignore"):
+        frac = catalog.parallax_err / catalog.parallax
+    poor = use_p & ~((catalog.parallax > 0) & (frac <= max_fractional_parallax_error))
+    if poor.any():
+        i = int(np.flatnonzero(poor)[0])
+        if catalog.parallax[i] > 0:
+            why = f"fractional error {frac[i]:.3g} > {max_fractional_parallax_error}"
+        else:
+            why = "not positive"
+        raise ValueError(
+            f"{catalog.source}: star {str(catalog.ids[i])!r} (row {int(catalog.rows[i])}) has "
+            f"parallax {catalog.parallax[i]:.4g} +- {catalog.parallax_err[i]:.4g} mas ({why}); "
+            f"distance = 1/parallax is biased there and refusing such stars biases the sample: "
+            f"use the distance prior 'exponential-length' or 'uniform-volume' "
+            f"(--distance-prior, [errors] distance_prior) ({int(poor.sum())} of {int(use_p.sum())} "
+            f"parallax star(s) like this)"
+        )
+
+
+def distance_warning(catalog: Catalog, distance_prior: str, distance_source: str = "auto",
+                     min_snr: float = 5.0) -> str | None:
+    """One line on the stars whose distance is prior-dominated (:func:`distance_information`),
+    or None if there are none. It starts with ``"most distances are prior-dominated"`` when
+    they are more than half the catalog."""
+    info = distance_information(catalog, distance_source, min_snr)
+    k, n = info["prior_dominated"], info["n"]
+    if k == 0:
+        return None
+    text = (f"{k} of {n} stars have no independent distance and a parallax with S/N < {min_snr:g} "
+            f"({info['non_positive_parallax']} of them <= 0): their distances come mostly from the "
+            f"distance prior ({distance_prior!r})")
+    if 2 * k > n:
+        text = ("most distances are prior-dominated: " + text + "; results then depend on that prior: "
+                "compare --distance-prior exponential-length and uniform-volume (and --length-scale), "
+                "and prefer stars with independent distances")
+    return text
+
+
+#: Grid nodes per star of the distance-posterior proposal (see :func:`parallax_log_posterior`):
+#: a log-spaced grid over the prior's whole support, a linear one over the parallax's
+#: +-15 sigma and one at the prior's far edge.
+_GRID_GLOBAL, _GRID_LOCAL = 1024, 257
+
+
+def parallax_log_posterior(w, parallax, parallax_err, distance_prior, *, length_scale=10.0,
+                           max_distance=300.0):
+    """Log density of the true parallax ``w`` given a measured one, up to a constant per star.
+
+    ``log N(parallax | w, parallax_err) + log pi_w(w)``, with ``pi_w(w) = pi(1/w) / w**2`` the
+    distance prior moved to parallax: ``w**-4`` for "uniform-volume" (w >= 1/max_distance),
+    ``w**-4 exp(-1 / (w L))`` for "exponential-length" (w >= 1/(100 L)), flat for "none"
+    (w > 0); ``-inf`` outside the support. In distance, ``log p(d | parallax) =
+    parallax_log_posterior(1/d, ...) - 2 log d``: for "exponential-length" its mode solves
+    Bailer-Jones's cubic ``d**3 / L - 2 d**2 + (parallax / s**2) d - 1 / s**2 = 0``
+    (Bailer-Jones 2015, PASP 127, 994).
+
+    Parameters
+    ----------
+    w : array_like
+        True parallax, mas (kpc^-1), broadcast against the others.
+    parallax, parallax_err : array_like
+        The measurement and its 1-sigma uncertainty, mas; the parallax may be <= 0.
+    distance_prior : {"none", "uniform-volume", "exponential-length"}
+    length_scale, max_distance : float
+        kpc, as in :func:`draw_samples`.
+
+    Returns
+    -------
+    ndarray
+    """
+    w = np.asarray(w, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = -0.5 * ((w - parallax) / parallax_err) ** 2
+        if distance_prior == "uniform-volume":
+            out = np.where(w >= 1.0 / max_distance, out - 4.0 * np.log(w), -np.inf)
+        elif distance_prior == "exponential-length":
+            out = np.where(w >= 1.0 / (_EXP_CUTOFF * length_scale),
+                           out - 4.0 * np.log(w) - 1.0 / (w * length_scale), -np.inf)
+        elif distance_prior == "none":
+            out = np.where(w > 0, out, -np.inf)
+        else:
+            raise ValueError(f"distance_prior: expected one of {', '.join(DISTANCE_PRIORS)}, "
+                             f"got {distance_prior!r}")
+    return out
+
+
+def _parallax_grid(plx, sp, w_lo):
+    """Grid nodes (m, N), sorted, covering each star's parallax posterior on w >= w_lo."""
+    m = plx.size
+    # the far edge of the prior (w -> w_lo) holds the mass of a parallax far below w_lo within
+    # about sp**2 / (w_lo - plx) of the edge
+    gap = w_lo - plx
+    with np.errstate(divide="ignore"):
+        s_edge = np.where(gap > sp, sp * sp / np.where(gap > 0, gap, 1.0), sp)
+    w_top = np.maximum(plx + 15.0 * sp, w_lo + 30.0 * s_edge)
+    t = np.linspace(0.0, 1.0, _GRID_GLOBAL)
+    g1 = w_lo * (w_top / w_lo)[:, None] ** t[None, :]
+    a = np.maximum(w_lo, plx - 15.0 * sp)
+    b = np.maximum(plx + 15.0 * sp, a)
+    t2 = np.linspace(0.0, 1.0, _GRID_LOCAL)
+    g2 = a[:, None] + (b - a)[:, None] * t2[None, :]
+    g3 = w_lo + (30.0 * s_edge)[:, None] * t2[None, :]
+    nodes = np.sort(np.concatenate([g1, g2, g3], axis=1), axis=1)
+    return np.maximum(nodes, w_lo) if m else nodes
+
+
+def _parallax_posterior_draws(plx, sp, prior, length_scale, max_distance, k, rng):
+    """(m, k) draws of the true parallax from a tabulated proposal close to its posterior under
+    the distance prior, and their exact log importance weights (posterior / proposal, up to a
+    constant per star).
+
+    The proposal: on each cell of :func:`_parallax_grid`, uniform in w, with the cell's mass
+    given by the trapezoid rule on the posterior density at its two nodes. The weight divides
+    the exact posterior density at the draw by that proposal density, so the weighted draws
+    follow the posterior however coarse the grid is (a finer grid only makes the weights more
+    even); every w with posterior density > 0 lies in a cell of positive mass unless the
+    density at both its nodes underflows (about 1e-320 of the peak).
+    """
+    w_lo = 1.0 / (max_distance if prior == "uniform-volume" else _EXP_CUTOFF * length_scale)
+    nodes = _parallax_grid(plx, sp, w_lo)
+    kw = {"length_scale": length_scale, "max_distance": max_distance}
+    lf = parallax_log_posterior(nodes, plx[:, None], sp[:, None], prior, **kw)
+    top = lf.max(axis=1, keepdims=True)
+    f = np.exp(lf - top)
+    width = np.diff(nodes, axis=1)
+    mass = width * 0.5 * (f[:, 1:] + f[:, :-1])
+    total = mass.sum(axis=1, keepdims=True)
+    cum = np.cumsum(mass, axis=1) / total
+    m = plx.size
+    w = np.empty((m, k))
+    log_q = np.empty((m, k))
+    for i in range(m):
+        # side="right" never picks a cell of zero mass; round-off at the top of cum is sent to the
+        # last cell with mass
+        j = np.searchsorted(cum[i], rng.random(k), side="right")
+        j = np.minimum(j, np.flatnonzero(mass[i] > 0)[-1])
+        w[i] = nodes[i, j] + width[i, j] * rng.random(k)
+        log_q[i] = np.log(mass[i, j] / total[i, 0]) - np.log(width[i, j])
+    log_target = parallax_log_posterior(w, plx[:, None], sp[:, None], prior, **kw) - top
+    return w, log_target - log_q
+
+
 def draw_samples(
     catalog: Catalog,
     k: int,
@@ -1038,11 +1466,16 @@ def draw_samples(
         Prior on the distance of stars whose distance comes from the parallax:
 
         - ``"none"``: distance = 1 / parallax (a prior flat in parallax); refused for a star
-          with ``parallax_err / parallax > max_fractional_parallax_error``.
+          with a parallax <= 0 or ``parallax_err / parallax > max_fractional_parallax_error``.
         - ``"uniform-volume"``: p(d) proportional to d^2 for 0 < d <= ``max_distance``.
         - ``"exponential-length"``: p(d) proportional to d^2 exp(-d / L), L = ``length_scale``
           (the exponentially decreasing space density of Bailer-Jones 2015, PASP 127, 994),
           cut at d = 100 L (where the prior's remaining mass is about 1e-35).
+
+        Under the two volume priors every parallax is used as a measurement, whatever its
+        signal-to-noise ratio or sign: the distance posterior is parallax likelihood x prior
+        (:func:`parallax_log_posterior`). Where the parallax says little (S/N below about 5)
+        that posterior is mostly the prior; :func:`distance_information` counts such stars.
     solar : None, str, dict or SolarParameters
         Solar parameters (default "v4.0"), resolved by :func:`swerve.frames.resolve_solar`.
     distance_source : {"auto", "distance", "parallax"}
@@ -1063,11 +1496,15 @@ def draw_samples(
     -----
     **What is sampled.** The proposal is the measurement distribution itself, read as a
     distribution of the true observables: (parallax, pmra, pmdec) from the trivariate normal
-    with the catalog's uncertainties and correlations, vlos independent normal. For a parallax
-    star the parallax is drawn from its normal *truncated* to parallax > 0 (> 1/max_distance
-    for "uniform-volume", > 1/(100 L) for "exponential-length"), exactly by inverse CDF, and
-    the proper motions from their conditional normal given that parallax, so the correlations
-    hold. A distance star's distance is drawn
+    with the catalog's uncertainties and correlations, vlos independent normal; except that a
+    parallax star's true parallax w is drawn from (close to) its posterior under the distance
+    prior. Under "none" w is drawn from its normal *truncated* to w > 0, exactly by inverse
+    CDF. Under the volume priors w is drawn from a tabulated density close to the posterior
+    N(parallax | w, s) pi_w(w) (a grid over the prior's whole support, refined around the
+    measurement, see :func:`parallax_log_posterior`), with the exact ratio posterior /
+    tabulated density as its weight, so the weights are nearly even even for a negative or
+    low signal-to-noise parallax. The proper motions are drawn from their conditional normal
+    given w, so the correlations hold. A distance star's distance is drawn
     from N(distance, distance_err) truncated to d > 0 and its proper motions from the marginal
     (pmra, pmdec) normal (the parallax, if any, is not used).
 
@@ -1086,12 +1523,16 @@ def draw_samples(
     truncated region, L(theta) is proportional (by a theta-independent factor per star) to the
     weighted mean sum_k w_k p(v_k | x_k, theta) / sum_k w_k, with
 
-    - parallax stars: log w = log J(d) + log[pi(d) d^2]; d^2 = |dd/dparallax|^-1 changes the
-      prior on d into one on parallax. Under "none" pi(d) d^2 = 1 (flat in parallax).
+    - parallax stars: log w = log J(d) + log[N(parallax | 1/d, s) pi(d) d^2 / q(1/d)], q the
+      density the parallax was drawn from; d^2 = |dd/dparallax|^-1 changes the prior on d into
+      one on parallax. Under "none" (q the truncated normal) this is log J(d).
     - distance stars: log w = log J(d) (a flat prior on d; the catalog distance is taken to be
       the measurement).
 
-    ``log_prior`` holds log[pi(d) d^2] and ``log_jacobian`` log J(d). A density in spherical
+    ``log_prior`` holds the distance part, the log of posterior / proposal (0 for distance
+    stars and under "none"; up to a constant per star), and ``log_jacobian`` log J(d). Weights
+    ``exp(log_prior)`` alone make the samples a draw from each star's posterior of its true
+    observables (what :mod:`swerve.trace` uses). A density in spherical
     components (v_r, v_theta, v_phi), folded or not, needs no further factor (an orthogonal map
     at fixed position). A likelihood that uses the density of fewer than three components must
     not use ``log_jacobian`` as it stands. The same weights serve a likelihood that integrates
@@ -1102,7 +1543,8 @@ def draw_samples(
     Solar parameters are fixed, not sampled: they are shared by all stars, so drawing them per
     star and averaging per star would treat them as independent for each star, which is wrong.
     Vary them as global nuisance parameters of the fit, or rerun with other sets.
-    Weights with poor parallaxes under the two volume priors can be very uneven: check
+    The weights ``exp(log_prior)`` are nearly even by construction; ``log_weight`` also
+    carries J(d), so it varies as much as d^2 does over the star's distance posterior: check
     :meth:`ErrorSamples.effective_sample_size`.
 
     References
@@ -1156,22 +1598,9 @@ def draw_samples(
         what = "distance" if distance_source == "distance" else "parallax"
         raise ValueError(f"{catalog.source}: star {str(catalog.ids[i])!r} (row {int(catalog.rows[i])}) "
                          f"has no {what} to sample (distance_source={distance_source!r})")
-    if distance_prior == "none" and use_p.any():
-        with np.errstate(all="ignore"):
-            frac = catalog.parallax_err / catalog.parallax
-        poor = use_p & ~((catalog.parallax > 0) & (frac <= max_fractional_parallax_error))
-        if poor.any():
-            i = int(np.flatnonzero(poor)[0])
-            if catalog.parallax[i] > 0:
-                why = f"fractional error {frac[i]:.3g} > {max_fractional_parallax_error}"
-            else:
-                why = "not positive"
-            raise ValueError(
-                f"{catalog.source}: star {str(catalog.ids[i])!r} (row {int(catalog.rows[i])}) has "
-                f"parallax {catalog.parallax[i]:.4g} +- {catalog.parallax_err[i]:.4g} mas ({why}); "
-                f"distance = 1/parallax is biased there: use distance_prior='exponential-length' "
-                f"or 'uniform-volume' ({int(poor.sum())} such star(s))"
-            )
+    if distance_prior == "none":
+        check_parallaxes(catalog, distance_prior, distance_source=distance_source,
+                         max_fractional_parallax_error=max_fractional_parallax_error)
 
     dist = np.empty((n, k))
     pm = np.empty((n, k, 2))
@@ -1193,14 +1622,13 @@ def draw_samples(
     if use_p.any():
         idx = np.flatnonzero(use_p)
         plx, sp = catalog.parallax[idx], catalog.parallax_err[idx]
-        if distance_prior == "uniform-volume":
-            low_value = 1.0 / max_distance
-        elif distance_prior == "exponential-length":
-            low_value = 1.0 / (_EXP_CUTOFF * length_scale)
+        if distance_prior == "none":
+            low = np.full(idx.size, np.finfo(float).tiny)  # keeps 1/parallax finite
+            w = _truncnorm(plx, sp, low, k, rng)
+            log_prior[idx] = 0.0
         else:
-            low_value = np.finfo(float).tiny  # keeps 1/parallax finite
-        low = np.full(idx.size, low_value)
-        w = _truncnorm(plx, sp, low, k, rng)
+            w, log_prior[idx] = _parallax_posterior_draws(plx, sp, distance_prior, length_scale,
+                                                          max_distance, k, rng)
         c_pw = np.stack([catalog.corr_parallax_pmra[idx] * sp * s1[idx],
                          catalog.corr_parallax_pmdec[idx] * sp * s2[idx]], axis=-1)  # (m, 2)
         gain = c_pw / (sp**2)[:, None]
@@ -1209,14 +1637,7 @@ def draw_samples(
         L = np.linalg.cholesky(cond_cov)
         z = rng.standard_normal((idx.size, k, 2))
         pm[idx] = cond_mean + np.einsum("nij,nkj->nki", L, z)
-        d = 1.0 / w
-        dist[idx] = d
-        if distance_prior == "none":
-            log_prior[idx] = 0.0
-        elif distance_prior == "uniform-volume":
-            log_prior[idx] = 4.0 * np.log(d)  # pi(d) d^2 = d^4 on d <= max_distance (truncation)
-        else:
-            log_prior[idx] = 4.0 * np.log(d) - d / length_scale
+        dist[idx] = 1.0 / w
     vlos = catalog.vlos[:, None] + catalog.vlos_err[:, None] * rng.standard_normal((n, k))
     log_jac = 2.0 * np.log(PM_KMS_PER_KPC_MASYR * dist)
 

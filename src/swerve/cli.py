@@ -10,45 +10,16 @@ import argparse
 import importlib
 import logging
 import os
+import signal
 import sys
-import tempfile
 import warnings
-from pathlib import Path
 
 from . import __version__
 
+# shared with the command modules, which import them from swerve.commands._common (not from here)
+from .commands._common import EXIT_ERROR, EXIT_OK, EXIT_USAGE, CommandError, parse_param_list  # noqa: F401
+
 log = logging.getLogger("swerve")
-
-#: exit codes
-EXIT_OK = 0
-EXIT_ERROR = 1
-EXIT_USAGE = 2
-
-
-class CommandError(Exception):
-    """A user-facing error: printed as one line, exit code 1."""
-
-
-def parse_param_list(items, option="--param") -> dict[str, float]:
-    """Parse ``["q_z=0.8", "m_disk=9e10"]`` into a dict of floats."""
-    out: dict[str, float] = {}
-    for item in items or ():
-        name, sep, value = item.partition("=")
-        if not sep or not name.strip():
-            raise CommandError(f"{option} {item!r}: expected NAME=VALUE, e.g. q_z=0.8")
-        try:
-            out[name.strip()] = float(value)
-        except ValueError:
-            raise CommandError(f"{option} {item!r}: value {value!r} is not a number") from None
-    return out
-
-
-def atomic_write_path(path: Path):
-    """A temporary path beside ``path``; rename it onto ``path`` when complete."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent or ".")
-    os.close(fd)
-    return Path(tmp)
 
 
 # ------------------------------------------------------------------------------- main -------
@@ -82,6 +53,7 @@ def main(argv=None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_USAGE
+    previous = _on_sigterm(_Terminated.raise_it)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
@@ -96,6 +68,9 @@ def main(argv=None) -> int:
         if len(lines) > 1:
             print(f"swerve {args.command}: {len(lines)} problems; nothing was written", file=sys.stderr)
         return EXIT_ERROR
+    except _Terminated:
+        print(f"swerve {args.command}: terminated", file=sys.stderr)
+        return 128 + signal.SIGTERM
     except KeyboardInterrupt:
         print(f"swerve {args.command}: interrupted", file=sys.stderr)
         return 130
@@ -105,6 +80,27 @@ def main(argv=None) -> int:
         except OSError:
             pass
         return EXIT_OK
+    finally:
+        if previous is not None:
+            _on_sigterm(previous)
+
+
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM (e.g. from `timeout`) during a command: unwound like Ctrl-C, so that open files are
+    removed and worker pools shut down (a plain SIGTERM kills the process with no cleanup, and
+    joblib's resource tracker then reports leaked semaphores)."""
+
+    @staticmethod
+    def raise_it(signum, frame):
+        raise _Terminated()
+
+
+def _on_sigterm(handler):
+    """Install ``handler`` for SIGTERM (main thread only); return the previous one, or None."""
+    try:
+        return signal.signal(signal.SIGTERM, handler)
+    except (ValueError, OSError, AttributeError):  # not the main thread, or no SIGTERM here
+        return None
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):

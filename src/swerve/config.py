@@ -30,7 +30,6 @@ Examples
 
 from __future__ import annotations
 
-import difflib
 import hashlib
 import json
 import math
@@ -38,6 +37,8 @@ import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
+
+from .fileio import did_you_mean
 
 try:  # Python >= 3.11
     import tomllib
@@ -195,8 +196,7 @@ def _label(section: str, key: str | None = None) -> str:
 
 
 def _suggest(name: str, options) -> str:
-    close = difflib.get_close_matches(name, list(options), n=1, cutoff=0.6)
-    return f"; did you mean {close[0]!r}?" if close else ""
+    return did_you_mean(name, options)
 
 
 def _fmt(value) -> str:

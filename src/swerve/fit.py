@@ -7,7 +7,8 @@ recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampli
 A refit after stars are added to a converged fit reweights that fit's chain by the new stars
 (importance sampling, :func:`swerve.sampling.importance_weights`) instead of sampling again.
 
-Run folder (``--out``)::
+Run folder (``--out``; created only once the inputs are checked, removed again when a fit
+into a new folder fails)::
 
     chain.h5        emcee HDF5 backend (an interrupted fit resumes from it)
     chain.key       what the chain belongs to (its stars, configuration, emulator hash, swerve
@@ -18,9 +19,12 @@ Run folder (``--out``)::
     stars.npz       the θ-independent terms of every star, with a hash of its inputs
     summary.json    per parameter: median, 68% / 95% credible intervals; P(q_z < 1), P(q_y < 1);
                     autocorrelation times, acceptance, convergence
-    summary.ecsv    the same table, with units
-    stars.ecsv      each star's log-likelihood at the posterior median and its pull toward a
-                    spherical halo (which stars drive the result); excluded stars and why
+    summary.ecsv    the same table: one row per free parameter with its ``unit`` column, every
+                    column described (:data:`SUMMARY_COLUMNS`)
+    stars.ecsv      one row per star in catalog order, used or excluded (with the reason): its
+                    log-likelihood at the posterior median, its pull toward a spherical halo
+                    (which stars drive the result), measured deflection (km/s) and cell
+                    (:data:`STARS_COLUMNS`)
     corner.png      the posterior (corner package)
     ppc.png         observed against emulated deflections in the position cells
     fit.json        the configuration, emulator path and content hash, solar parameters, catalog,
@@ -31,8 +35,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import time
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -43,9 +47,13 @@ from .config import Key, Schema, Section, load_config, validate
 
 FIT_SCHEMA = Schema("fit", (
     Section("catalog", (
-        Key("columns", "str", "", doc="column mapping for other names, e.g. 'ra=RA_deg,dec=DE_deg'"),
+        Key("columns", "str", "", doc="column mapping for other names, e.g. 'ra=RA_deg,dec=DE_deg', or a preset: "
+            "'gaia' (Gaia DR3 gaia_source names), 'gaia,vlos=my_rv'"),
         Key("units", "str", "", doc="units of unit-less (CSV) columns, e.g. 'distance=pc'"),
         Key("drop_invalid", "bool", False, doc="drop invalid rows (reported) instead of refusing the file"),
+        Key("parallax_zero_point", "float", 0.0, min=-1.0, max=1.0,
+            doc="parallax zero point Z, mas: parallaxes become parallax - Z (0: none applied; Gaia EDR3's global "
+                "quasar offset is about -0.017 mas, Lindegren et al. 2021, A&A 649, A4)"),
     )),
     Section("errors", (
         Key("method", "str", "smoothed", choices=("smoothed", "linear", "samples"),
@@ -59,7 +67,7 @@ FIT_SCHEMA = Schema("fit", (
         Key("seed", "int", 1, min=0, doc="seed of the per-star error samples"),
     )),
     Section("priors", (
-        Key("parameters", "table", {}, doc="per parameter: {kind = 'uniform'|'gaussian'|'fixed', low, high, mu, sigma, value}"),
+        Key("parameters", "table", {}, doc="per parameter: {kind = 'uniform'|'gaussian'|'beta'|'fixed', low, high, mu, sigma, alpha, beta, value}"),
     )),
     Section("selection", (
         Key("r_min", "float", 0.0, min=0.0, doc="stricter minimum galactocentric radius of the stars used, kpc (0: the emulator's)"),
@@ -80,6 +88,16 @@ FIT_SCHEMA = Schema("fit", (
             doc="widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment): the per-cell "
                 "model overstates the information on the launch slope and the disk mass, and the adjustment "
                 "calibrates the slope's intervals (benchmarks/RESULTS.md); false: the plain likelihood"),
+        # mixture with a background population (swerve.background; helper of issue 23)
+        Key("background", "str", "none", choices=("none", "halo"),
+            doc="'halo': each star is a hypervelocity star with probability f_hvs (a parameter, prior in [priors], "
+                "uniform on [0, 1] by default) or a stellar-halo star (velocity ellipsoid halo_sigma); per-star "
+                "memberships in stars.ecsv; 'none': every star is a hypervelocity star"),
+        Key("halo_sigma", "list[float]", [141.0, 75.0, 85.0], min=1.0, length=3,
+            doc="the halo's velocity dispersions (sigma_r, sigma_theta, sigma_phi), km/s (Bond et al. 2010)"),
+        Key("prior_membership", "str", "",
+            doc="catalog column of each star's own prior probability of being a hypervelocity star (replaces "
+                "f_hvs for the stars where it is given; needs background = 'halo'); '' for none"),
     )),
     Section("frame", (
         Key("solar", "str", "v4.0", doc="solar-parameter set used to move the stars to the Galactocentric frame"),
@@ -108,7 +126,7 @@ def load_fit_config(path=None, overrides: dict | None = None) -> dict:
         merged = {k: dict(v) for k, v in cfg.items()}
         for sec, vals in overrides.items():
             merged.setdefault(sec, {}).update(vals)
-        cfg = validate(merged, FIT_SCHEMA, source=str(path or "<overrides>"))
+        cfg = validate(merged, FIT_SCHEMA, source=str(path or "the command line"))
     return cfg
 
 
@@ -140,7 +158,27 @@ def _star_seed(seed: int, star_id: str) -> np.random.SeedSequence:
 def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
     """θ-independent terms of every star (a :class:`~swerve.likelihood.StarTerms`), each star's
     distance samples drawn from its own seed (``[errors] seed`` and its id), reusing the cached
-    terms of unchanged stars from ``cache_path``. Returns (terms, n_reused)."""
+    terms of unchanged stars from ``cache_path`` and rewriting it (atomically). Returns
+    (terms, n_reused)."""
+    terms, reused, hashes = _star_terms(catalog, spec, cfg, solar, cache_path, r_min)
+    if cache_path is not None:
+        _write_star_cache(cache_path, hashes, terms)
+    return terms, reused
+
+
+def _write_star_cache(path, hashes, terms) -> None:
+    """``stars.npz``: each used star's input hash and θ-independent terms (written atomically)."""
+    from .fileio import write_atomic
+
+    write_atomic(path, lambda fh: np.savez(fh, hash=np.asarray(hashes), cell=terms.cell, mean=terms.mean,
+                                           cov=terms.cov, log_w=terms.log_w))
+
+
+def _star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
+    """:func:`star_terms` without writing the cache: (terms, n_reused, input hash of each used star).
+
+    A star whose measurements give non-finite terms (e.g. an absurd velocity that overflows in
+    the frame transform) is a ValueError naming its row and id."""
     from .catalog import draw_samples
     from .likelihood import StarTerms, linearised_samples, prepare_stars, smoothed_samples
 
@@ -169,15 +207,24 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
             rng = np.random.default_rng(_star_seed(e["seed"], catalog.ids[i]))
             smp = draw_samples(sub, e["samples"], rng, distance_prior=e["distance_prior"], solar=solar,
                                length_scale=e["length_scale"], max_distance=e["max_distance"])
-            if e["method"] == "linear":
-                smp = linearised_samples(sub, smp, solar)
-            elif e["method"] == "smoothed":
-                smp = smoothed_samples(sub, smp, solar)
-            t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
+            # overflow of absurd inputs is caught by the finiteness check below, with the star named
+            with np.errstate(over="ignore", invalid="ignore"):
+                _check_finite_samples(catalog, i, smp)
+                if e["method"] == "linear":
+                    smp = linearised_samples(sub, smp, solar)
+                elif e["method"] == "smoothed":
+                    smp = smoothed_samples(sub, smp, solar)
+                t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
             if t.n == 0:  # outside the selection: reported, never silently used
                 excluded.extend(t.excluded)
                 continue
             c, m, cv, lw = t.cell[0], t.mean[0], t.cov[0], t.log_w[0]
+            inside = np.isfinite(lw)  # samples inside the cells (log weight -inf outside)
+            if not (inside.any() and np.all(np.isfinite(m[inside])) and np.all(np.isfinite(cv[inside]))
+                    and not np.any(np.isnan(lw))):
+                raise ValueError(f"{catalog.source}: row {int(catalog.rows[i])} (id {str(catalog.ids[i])!r}): "
+                                 "its measurements give non-finite Galactocentric velocities; check the "
+                                 "vlos, pmra, pmdec and distance (or parallax) columns")
         cells.append(c)
         means.append(m)
         covs.append(cv)
@@ -190,11 +237,17 @@ def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
                          f"({len(excluded)} excluded; first: {first['id']!r}: {first['reason']})")
     terms = StarTerms(np.asarray(ids), np.asarray(cells), np.asarray(means), np.asarray(covs),
                       np.asarray(logws), excluded)
-    if cache_path is not None:
-        tmp = Path(cache_path).with_suffix(".tmp.npz")
-        np.savez(tmp, hash=np.asarray(keep_hash), cell=terms.cell, mean=terms.mean, cov=terms.cov, log_w=terms.log_w)
-        os.replace(tmp, cache_path)
-    return terms, reused
+    return terms, reused, keep_hash
+
+
+def _check_finite_samples(catalog, i, smp) -> None:
+    """Refuse a star whose distance or velocity samples are not finite (one line, row and id)."""
+    for name in ("distance", "position", "velocity"):
+        arr = getattr(smp, name, None)
+        if arr is not None and not np.all(np.isfinite(np.asarray(arr, dtype=float))):
+            raise ValueError(f"{catalog.source}: row {int(catalog.rows[i])} (id {str(catalog.ids[i])!r}): "
+                             f"its measurements give non-finite {name} samples; check the vlos, pmra, pmdec "
+                             "and distance (or parallax) columns")
 
 
 # ------------------------------------------------------------------------------------ fit ------
@@ -205,8 +258,40 @@ class FitOutcome:
     terminal: str
 
 
+#: fewer usable stars than this fit with a :class:`FewStarsWarning`
+FEW_STARS = 10
+
+
+class FewStarsWarning(UserWarning):
+    """A fit of very few stars: its posterior is mostly the prior and the emulator's error."""
+
+
 def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, log=print) -> FitOutcome:
-    """Fit a catalog against an emulator and write the run folder (module docstring)."""
+    """Fit a catalog against an emulator and write the run folder (module docstring).
+
+    Nothing is written until the inputs are checked (catalog, configuration, priors, every
+    star's terms). A failed fit into a folder it created removes that folder again; into an
+    existing run folder it leaves the files of earlier fits (their chain resumes). An
+    interruption (KeyboardInterrupt) keeps the folder, so the chain resumes on a rerun.
+    """
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise ValueError(f"{out_dir}: a file is there, not a run folder")
+    created = out_dir  # the outermost folder this run creates, removed again on failure
+    while not created.parent.exists() and created.parent != created:
+        created = created.parent
+    created = None if out_dir.exists() else created
+    try:
+        return _run_fit(catalog_path, emulator_path, out_dir, cfg, progress=progress, log=log)
+    except Exception:
+        if created is not None and created.is_dir():
+            import shutil
+
+            shutil.rmtree(created, ignore_errors=True)
+        raise
+
+
+def _run_fit(catalog_path, emulator_path, out_dir, cfg, *, progress=False, log=print) -> FitOutcome:
     from .catalog import parse_columns, parse_units, read_catalog
     from .emulate import content_hash, load
     from .frames import SolarParameters
@@ -215,7 +300,6 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
     from .summaries import SummarySpec
 
     t_start = time.perf_counter()
-    out_dir = Path(out_dir)
     emu = load(emulator_path)
     meta = emu.metadata or {}
     if "summaries" not in meta:
@@ -237,21 +321,45 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
 
     c = cfg["catalog"]
     catalog = read_catalog(catalog_path, columns=parse_columns(c["columns"] or None),
-                           units=parse_units(c["units"] or None), drop_invalid=c["drop_invalid"])
+                           units=parse_units(c["units"] or None), drop_invalid=c["drop_invalid"],
+                           parallax_zero_point=c["parallax_zero_point"])
     for p in catalog.problems:
         notes.append(f"dropped: {p}")
-    out_dir.mkdir(parents=True, exist_ok=True)  # only once the inputs are known to be good
+    from .catalog import check_parallaxes, distance_warning
+
+    for hint in catalog.hints + (distance_warning(catalog, cfg["errors"]["distance_prior"]),):
+        if hint:  # said now (the sampling takes a while) and kept in summary.json's notes
+            notes.append(f"warning: {hint}")
+            log(f"swerve fit: warning: {hint}")
+    check_parallaxes(catalog, cfg["errors"]["distance_prior"])  # every unusable parallax counted at once
     t0 = time.perf_counter()
-    terms, reused = star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz", r_min=r_min or None)
+    terms, reused, star_hashes = _star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz",
+                                             r_min=r_min or None)
     t_terms = time.perf_counter() - t0
+    if terms.n < FEW_STARS:
+        few = (f"only {terms.n} usable star(s): the posterior is then mostly the prior and the emulator's "
+               f"own error, and its intervals are unreliable (a fit wants at least {FEW_STARS} stars)")
+        notes.append(few)
+        warnings.warn(f"{catalog.source}: {few}", FewStarsWarning, stacklevel=2)
     like_options = dict(emulator=emu, spec=spec, include_emulator_variance=cfg["emulator"]["include_variance"],
                         emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
                         velocity_floor=cfg["emulator"]["velocity_floor"])
+    lk = cfg["likelihood"]
+    if lk["background"] != "none":  # the mixture (swerve.background)
+        like_options.update(background=lk["background"], halo_sigma=lk["halo_sigma"])
+        if lk["prior_membership"]:
+            from .background import prior_membership
+
+            terms.prior_membership = prior_membership(catalog, terms.ids, lk["prior_membership"])
+    elif lk["prior_membership"]:
+        raise ValueError("[likelihood] prior_membership needs a background population (background = 'halo')")
     like = Likelihood(stars=terms, **like_options)
-    names = list(emu.parameter_names)
-    bounds = np.asarray(emu.bounds, dtype=float)
+    names = list(like.parameter_names)  # the emulator's, and f_hvs with a background
+    bounds = np.asarray(like.bounds, dtype=float)
     priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
     plain = Posterior(like, priors)
+    out_dir.mkdir(parents=True, exist_ok=True)  # only once the inputs are known to be good
+    _write_star_cache(out_dir / "stars.npz", star_hashes, terms)
     s = cfg["sampler"]
 
     # what defines the chain: the stars, the emulator and the configuration, except the step cap
@@ -339,6 +447,12 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
                      "total": round(time.perf_counter() - t_start, 2)},
         "notes": notes,
     }
+    # posterior sanity warnings (swerve.sampling.posterior_warnings): printed and in summary.json
+    from .sampling import posterior_warnings
+
+    summary["warnings"] = posterior_warnings(res.samples, res.names, priors, weights=res.weights,
+                                             kappa=(adjustment or {}).get("kappa"), n_stars=terms.n,
+                                             catalog_meta=catalog.meta, emulator_meta=meta)
     med = np.array([summ[n]["median"] for n in res.names])
     _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path,
                    content_hash(emulator_path), solar, meta, priors)
@@ -486,34 +600,109 @@ def _last_walkers(chain, ndim):
 
 
 def _write_json(path, obj):
-    tmp = Path(str(path) + ".tmp")
-    tmp.write_text(json.dumps(obj, indent=2, default=_json_default))
-    os.replace(tmp, path)
+    """Strict JSON, atomically (:func:`swerve.fileio.write_json`)."""
+    from .fileio import write_json
+
+    write_json(path, obj)
 
 
-def _json_default(o):
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    return str(o)
+#: summary.ecsv's columns: name -> description (values in the row's ``unit``)
+SUMMARY_COLUMNS = {
+    "parameter": "inferred parameter (the emulator's name)",
+    "unit": "unit of this row's median, lo68, hi68, lo95 and hi95 (empty: dimensionless)",
+    "median": "posterior median",
+    "lo68": "lower end of the central 68% credible interval (16th percentile)",
+    "hi68": "upper end of the central 68% credible interval (84th percentile)",
+    "lo95": "lower end of the central 95% credible interval (2.5th percentile)",
+    "hi95": "upper end of the central 95% credible interval (97.5th percentile)",
+    "tau": "integrated autocorrelation time of the chain, steps",
+}
+
+#: stars.ecsv's columns: name -> (unit, description)
+STARS_COLUMNS = {
+    "id": ("", "star identifier, as in the catalog"),
+    "row": ("", "data row of the star in the catalog (1 = first star; the header is not counted)"),
+    "used": ("", "true: the star is in the fit; false: excluded (see reason)"),
+    "reason": ("", "why the star was excluded (empty for a used star)"),
+    "loglike_median": ("", "the star's log-likelihood (natural log) at the posterior median; NaN if excluded"),
+    "dloglike_vs_spherical": ("", "log L at the posterior median minus log L with q_y = q_z = 1 (positive: "
+                                  "the star pulls away from a spherical halo); NaN if excluded"),
+    "v_tf_obs": ("km / s", "measured folded polar deflection v_theta sign(z) (positive toward the disk plane), "
+                           "weighted mean over the star's distance samples inside the cells; NaN if excluded"),
+    "v_tf_err": ("km / s", "measurement uncertainty of v_tf_obs (square root of the weighted mean sample "
+                           "variance); NaN if excluded"),
+    "cell": ("", "position cell of the emulator's summaries (0-based; labels in the meta's cell_labels) "
+                 "holding most of the star's samples; -1 if excluded"),
+}
+
+
+def _summary_table(summary, names, units):
+    """summary.ecsv: one row per free parameter, its unit in a column, every column described."""
+    from astropy.table import Table
+
+    t = Table()
+    pars = summary["parameters"]
+    t["parameter"] = list(names)
+    t["unit"] = [units.get(n, "") for n in names]
+    for col, key, j in (("median", "median", None), ("lo68", "ci68", 0), ("hi68", "ci68", 1),
+                        ("lo95", "ci95", 0), ("hi95", "ci95", 1), ("tau", "tau", None)):
+        t[col] = [float(pars[n][key] if j is None else pars[n][key][j]) for n in names]
+    for col, desc in SUMMARY_COLUMNS.items():
+        t[col].description = desc
+    t.meta = {"probabilities": summary["probabilities"],
+              "fixed": {n: {"value": v, "unit": units.get(n, "")} for n, v in summary["fixed"].items()},
+              "acceptance": summary["sampler"]["acceptance"], "converged": summary["sampler"]["converged"],
+              "swerve_version": __version__}
+    return t
+
+
+def _stars_table(terms, catalog, ll_med, dll_sph, spec):
+    """stars.ecsv: every catalog star that reached the fit, used or excluded, in catalog order."""
+    from astropy.table import Table
+
+    rows_of = {str(i): int(r) for i, r in zip(catalog.ids, catalog.rows)}
+    w = np.exp(terms.log_w)
+    used = {
+        "id": terms.ids.astype(str), "used": np.ones(terms.n, bool), "reason": [""] * terms.n,
+        "loglike_median": np.asarray(ll_med, float),
+        "dloglike_vs_spherical": np.asarray(dll_sph if dll_sph is not None else np.full(terms.n, np.nan), float),
+        "v_tf_obs": np.sum(w * terms.mean[..., 1], axis=1),
+        "v_tf_err": np.sqrt(np.sum(w * terms.cov[..., 1, 1], axis=1)),
+        "cell": np.array([int(np.bincount(c[c >= 0]).argmax()) for c in terms.cell], dtype=int),
+    }
+    ex = terms.excluded
+    m = len(ex)
+    nan = np.full(m, np.nan)
+    cols = {k: np.concatenate([used[k], v]) for k, v in {
+        "id": np.array([str(e["id"]) for e in ex], dtype=str), "used": np.zeros(m, bool),
+        "reason": np.array([str(e["reason"]) for e in ex], dtype=str), "loglike_median": nan,
+        "dloglike_vs_spherical": nan, "v_tf_obs": nan, "v_tf_err": nan, "cell": np.full(m, -1, dtype=int)}.items()}
+    cols["row"] = np.array([rows_of.get(str(i), -1) for i in cols["id"]], dtype=int)
+    order = np.argsort(cols["row"], kind="stable")
+    st = Table()
+    for name, (unit, desc) in STARS_COLUMNS.items():
+        if name == "dloglike_vs_spherical" and dll_sph is None:
+            continue
+        values = cols[name][order]
+        st[name] = values.astype(str) if name in ("id", "reason") else values
+        if unit:
+            st[name].unit = unit
+        st[name].description = desc
+    st.meta = {"excluded": ex, "cell_labels": list(spec.cell_labels()),
+               "n_used": int(terms.n), "n_excluded": m, "swerve_version": __version__}
+    return st
 
 
 def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path, emu_hash,
                    solar, meta, priors):
-    from astropy.table import Table
+    import astropy.units as u
 
     from . import plots
 
     _write_json(out_dir / "summary.json", summary)
-    rows = []
-    for n in res.names:
-        s = summary["parameters"][n]
-        rows.append((n, s["median"], s["ci68"][0], s["ci68"][1], s["ci95"][0], s["ci95"][1], s["tau"]))
-    t = Table(rows=rows, names=("parameter", "median", "lo68", "hi68", "lo95", "hi95", "tau"))
-    t.meta = {"probabilities": summary["probabilities"], "acceptance": summary["sampler"]["acceptance"],
-              "converged": summary["sampler"]["converged"], "swerve_version": __version__}
-    _atomic_table(t, out_dir / "summary.ecsv")
+    units = dict(zip(like.emulator.parameter_names, getattr(like.emulator, "units", None) or ()))
+    units = {n: (str(u.Unit(v)) if v else "") for n, v in units.items()}
+    _atomic_table(_summary_table(summary, res.names, units), out_dir / "summary.ecsv")
 
     # per-star contributions at the posterior median, and the pull toward a spherical halo
     full_med = post.full(med[None, :])
@@ -528,17 +717,11 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
             if lo <= 1.0 <= hi:
                 sph[0, j] = 1.0
                 have_sph = True
-    st = Table()
-    st["id"] = terms.ids.astype(str)
-    st["loglike_median"] = ll_med
-    if have_sph:
-        st["dloglike_vs_spherical"] = ll_med - like.per_star(sph)[0]
-        st["dloglike_vs_spherical"].description = "log L at the posterior median minus log L with q_y = q_z = 1"
-    w = np.exp(terms.log_w)
-    st["v_tf_obs"] = np.sum(w * terms.mean[..., 1], axis=1)
-    st["v_tf_err"] = np.sqrt(np.sum(w * terms.cov[..., 1, 1], axis=1))
-    st["cell"] = [int(np.bincount(c[c >= 0]).argmax()) for c in terms.cell]
-    st.meta = {"excluded": summary["stars"]["excluded"]}
+    st = _stars_table(terms, catalog, ll_med, ll_med - like.per_star(sph)[0] if have_sph else None, spec)
+    if getattr(like, "background", "none") != "none":  # the mixture's memberships (swerve.background)
+        from .background import add_membership_column
+
+        add_membership_column(st, like, post, res)
     _atomic_table(st, out_dir / "stars.ecsv")
 
     fit_record = {
@@ -559,7 +742,7 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
     n_draw = min(200, len(res.samples), int(np.count_nonzero(res.weights)) if res.weights is not None else len(res.samples))
     draws = res.samples[np.random.default_rng(0).choice(len(res.samples), size=n_draw, replace=False, p=res.weights)]
     mu, sig = like.cell_gaussians(post.full(draws))
-    plots.posterior_predictive(st, mu, sig, spec, out_dir / "ppc.png")
+    plots.posterior_predictive(st[st["used"]], mu, sig, spec, out_dir / "ppc.png")
 
 
 def _truth_from_meta(meta, names):
@@ -574,9 +757,11 @@ def _truth_from_meta(meta, names):
 
 
 def _atomic_table(table, path):
-    tmp = Path(str(path) + ".tmp.ecsv")
-    table.write(tmp, format="ascii.ecsv", overwrite=True)
-    os.replace(tmp, path)
+    """An ECSV table, atomically (:func:`swerve.fileio.atomic_path`)."""
+    from .fileio import atomic_path
+
+    with atomic_path(path) as tmp:
+        table.write(tmp, format="ascii.ecsv", overwrite=True)
 
 
 def terminal_summary(summary, catalog_path, emulator_path) -> str:
@@ -607,5 +792,7 @@ def terminal_summary(summary, catalog_path, emulator_path) -> str:
         lines.append(f"  ... and {len(summary['stars']['excluded']) - 5} more excluded (see stars.ecsv)")
     for n in summary["notes"]:
         lines.append(f"  note: {n}")
+    for n in summary.get("warnings", ()):
+        lines.append(f"  WARNING: {n}")
     lines.append(f"  time: {summary['timing_s']['total']:.1f} s")
     return "\n".join(lines)

@@ -13,7 +13,7 @@ forecast then includes whatever the emulator gets wrong, which a survey plan sho
 about. Truth: every emulator parameter at the midpoint of its bounds, overridden by
 ``truth`` (default q_z = 0.85).
 
-Configuration: :data:`FORECAST_SCHEMA` (``swerve forecast --print-config``).
+Configuration: :data:`FORECAST_SCHEMA` (``swerve forecast --template``).
 """
 
 from __future__ import annotations
@@ -71,15 +71,26 @@ def truth_point(emu, truth: dict) -> dict:
 
 
 def run_forecast(emulator_dir, out_dir, cfg: dict, log=None) -> dict:
-    """Run the forecast and write ``out_dir/forecast.json`` and ``forecast.png``.
+    """Run the forecast, writing ``out_dir/forecast.json`` and ``forecast.png`` as each row finishes.
+
+    Every finished sample size is written at once (atomically, :mod:`swerve.fileio`), with
+    ``settings["complete"]`` false until the last; rerunning with the same settings into the
+    same folder resumes: rows already there are kept, only the missing sample sizes are fitted.
+    Each sample size draws from its own seed (``[seed, 1, N]``), so a resumed forecast equals
+    an uninterrupted one. A folder holding a forecast of other settings is refused.
 
     Returns the document: ``settings`` (configuration, truth, emulator hash, error model,
-    timing) and ``rows``, one per N: ``n_stars``, ``width68_q_z`` / ``width68_q_y`` (median,
-    p16, p84 over catalogs of the 68% half-width), ``p_decisive`` (fraction of catalogs with
-    P(q_z on the true side of 1) > threshold), ``mean_p_true_side``, ``converged_fraction``.
+    timing, ``complete``, ``key``) and ``rows``, one per N: ``n_stars``, ``width68_q_z`` /
+    ``width68_q_y`` (median, p16, p84 over catalogs of the 68% half-width), ``p_decisive``
+    (fraction of catalogs with P(q_z on the true side of 1) > threshold), ``mean_p_true_side``,
+    ``converged_fraction``.
     """
+    import hashlib
+    import json
+
     from . import __version__
     from .emulate import content_hash, load
+    from .fileio import jsonable
     from .simulate import training_setup_from_dict
     from .validation import (
         draw_catalogs,
@@ -101,47 +112,101 @@ def run_forecast(emulator_dir, out_dir, cfg: dict, log=None) -> dict:
     em = parse_error_model(cfg["errors"])
     truth = truth_point(emu, cfg["truth"])
     oblate = truth["q_z"] < 1.0
-    rng = np.random.default_rng(cfg["seed"])
-    gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
-    launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
-    bank = validation_bank(setup, gal, int(rng.integers(2 ** 31)), cfg["bank"]["n_orbits"])
-    rows, n_warn = [], 0
-    for n in cfg["n_stars"]:
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise ValueError(f"--out {out_dir}: a file is there, not a folder")
+    emu_hash = content_hash(emulator_dir)
+    # what the rows depend on (not the worker count): a resumed forecast must match it
+    keyed = {k: v for k, v in cfg.items() if k not in ("n_jobs", "n_stars")}
+    key = hashlib.sha256(json.dumps(jsonable({"cfg": keyed, "truth": truth, "emulator": emu_hash,
+                                              "errors": em.to_dict(), "version": __version__}),
+                                    sort_keys=True).encode()).hexdigest()
+    done = _previous_rows(out_dir / "forecast.json", key)
+    settings = {"config": cfg, "truth": truth, "side": "q_z<1" if oblate else "q_z>1",
+                "emulator": os.fspath(emulator_dir), "emulator_hash": emu_hash,
+                "error_model": em.to_dict(), "catalog_source": "full simulation (one bank at the truth)",
+                "low_ess_warnings": 0, "swerve_version": __version__, "key": key, "complete": False,
+                "seconds": 0.0}
+    if done:
+        settings["low_ess_warnings"] = done["settings"].get("low_ess_warnings", 0)
+        settings["seconds"] = float(done["settings"].get("seconds") or 0.0)
+    rows_done = {int(r["n_stars"]): r for r in (done or {}).get("rows", [])}
+    todo = [int(n) for n in cfg["n_stars"] if int(n) not in rows_done]
+    if rows_done and log:
+        log(f"forecast: resuming in {out_dir}: {len(rows_done)} sample size(s) already done, {len(todo)} to go")
+    bank = None
+    if todo:
+        gal = setup.galaxy_at({n: truth[n] for n in setup.galaxy_names})
+        launch = setup.launch_at({n: truth[n] for n in setup.launch_names})
+        bank_rng = np.random.default_rng([cfg["seed"], 0])
+        bank = validation_bank(setup, gal, int(bank_rng.integers(2 ** 31)), cfg["bank"]["n_orbits"])
+
+    def document(t_start):
+        rows = [rows_done[int(n)] for n in cfg["n_stars"] if int(n) in rows_done]
+        settings["complete"] = len(rows) == len(cfg["n_stars"])
+        settings["seconds"] = round(settings["seconds"] + time.perf_counter() - t_start, 1)
+        return {"settings": settings, "rows": rows}
+
+    t_mark = t0
+    for n in todo:
+        rng = np.random.default_rng([cfg["seed"], 1, n])  # this sample size's own stream
         tabs, nw = draw_catalogs(setup, gal, launch, bank, em, int(n), cfg["catalogs"], rng, solar=cfg["solar"])
-        n_warn += nw
+        settings["low_ess_warnings"] += nw
         fits = fit_many(emulator_dir, [(t, int(rng.integers(2 ** 31)), None) for t in tabs], cfg["fit"],
                         n_jobs=cfg["n_jobs"], solar=cfg["solar"])
-        ok = [r for r in fits if "error" not in r]
-        row = {"n_stars": int(n), "n_catalogs": len(fits), "n_failed": len(fits) - len(ok)}
-        for q in ("q_z", "q_y"):
-            if q in emu.parameter_names and ok:
-                w = np.array([0.5 * (r["hi68"][r["names"].index(q)] - r["lo68"][r["names"].index(q)]) for r in ok])
-                row[f"width68_{q}"] = dict(zip(("p16", "median", "p84"), np.percentile(w, [16, 50, 84]).tolist()))
-        if ok:
-            p_side = np.array([r["p_below_1"]["q_z"] if oblate else 1.0 - r["p_below_1"]["q_z"] for r in ok])
-            row["p_decisive"] = float(np.mean(p_side > cfg["threshold"]))
-            row["mean_p_true_side"] = float(np.mean(p_side))
-            row["converged_fraction"] = float(np.mean([r["converged"] for r in ok]))
-        rows.append(row)
+        row = _row(n, fits, emu, oblate, cfg["threshold"])
+        rows_done[int(n)] = row
+        doc = document(t_mark)
+        t_mark = time.perf_counter()
+        out_dir.mkdir(parents=True, exist_ok=True)  # created with the first finished row
+        write_json(out_dir / "forecast.json", doc)
         if log:
             wz = row.get("width68_q_z", {}).get("median", float("nan"))
             log(f"forecast: N = {n}: q_z 68% half-width {wz:.3f}, decisive in {row.get('p_decisive', float('nan')):.2f}")
-    doc = {"settings": {"config": cfg, "truth": truth, "side": "q_z<1" if oblate else "q_z>1",
-                        "emulator": os.fspath(emulator_dir), "emulator_hash": content_hash(emulator_dir),
-                        "error_model": em.to_dict(), "catalog_source": "full simulation (one bank at the truth)",
-                        "low_ess_warnings": n_warn, "swerve_version": __version__,
-                        "seconds": round(time.perf_counter() - t0, 1)},
-           "rows": rows}
-    out_dir = Path(out_dir)
+    doc = document(t_mark)
     out_dir.mkdir(parents=True, exist_ok=True)
     plot_forecast(doc, out_dir / "forecast.png")
     write_json(out_dir / "forecast.json", doc)
     return doc
 
 
+def _row(n, fits, emu, oblate, threshold) -> dict:
+    """One sample size's row of the forecast from its catalogs' fits."""
+    ok = [r for r in fits if "error" not in r]
+    row = {"n_stars": int(n), "n_catalogs": len(fits), "n_failed": len(fits) - len(ok)}
+    for q in ("q_z", "q_y"):
+        if q in emu.parameter_names and ok:
+            w = np.array([0.5 * (r["hi68"][r["names"].index(q)] - r["lo68"][r["names"].index(q)]) for r in ok])
+            row[f"width68_{q}"] = dict(zip(("p16", "median", "p84"), np.percentile(w, [16, 50, 84]).tolist()))
+    if ok:
+        p_side = np.array([r["p_below_1"]["q_z"] if oblate else 1.0 - r["p_below_1"]["q_z"] for r in ok])
+        row["p_decisive"] = float(np.mean(p_side > threshold))
+        row["mean_p_true_side"] = float(np.mean(p_side))
+        row["converged_fraction"] = float(np.mean([r["converged"] for r in ok]))
+    return row
+
+
+def _previous_rows(path: Path, key: str) -> dict | None:
+    """The document of an earlier forecast of the same settings at ``path`` (None if there is none).
+
+    A readable forecast of other settings is a ValueError: it is not overwritten."""
+    import json
+
+    if not path.is_file():
+        return None
+    try:
+        doc = json.loads(path.read_text())
+    except (OSError, ValueError) as exc:
+        raise ValueError(f"{path}: unreadable ({exc}); move it away or choose another --out") from None
+    if not isinstance(doc, dict) or doc.get("settings", {}).get("key") != key:
+        raise ValueError(f"{path} holds a forecast of other settings (or of an older swerve); "
+                         "choose another --out folder")
+    return doc
+
+
 def plot_forecast(doc: dict, path):
     """Posterior half-widths of q_z and q_y against N, and the fraction of decisive catalogs."""
-    from .plots import sample_size_axis
+    from .plots import sample_size_axis, save_figure
     from .validation import _pyplot
 
     plt = _pyplot()
@@ -164,5 +229,4 @@ def plot_forecast(doc: dict, path):
     ax[1].set_ylabel(f"fraction with P({doc['settings']['side']}) > {thr:g}")
     fig.suptitle(f"truth q_z = {doc['settings']['truth']['q_z']:g}")
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+    save_figure(fig, path, dpi=100)

@@ -141,7 +141,7 @@ class SolarParameters:
         object.__setattr__(self, "galcen_v_sun_kms", vsun)
 
     @classmethod
-    def from_name(cls, name: str = DEFAULT_SOLAR) -> "SolarParameters":
+    def from_name(cls, name: str = DEFAULT_SOLAR) -> SolarParameters:
         """The solar-parameter set astropy registers under ``name`` (e.g. ``"v4.0"``).
 
         Raises
@@ -179,7 +179,7 @@ class SolarParameters:
         galcen_ra_deg=266.4051,
         galcen_dec_deg=-28.936175,
         name: str = "custom",
-    ) -> "SolarParameters":
+    ) -> SolarParameters:
         """Explicit solar parameters (defaults are astropy's ``"v4.0"`` values).
 
         Quantities are accepted: ``galcen_distance_kpc`` and ``z_sun_kpc`` as lengths,
@@ -204,7 +204,7 @@ class SolarParameters:
         return d
 
     @classmethod
-    def from_dict(cls, d: dict) -> "SolarParameters":
+    def from_dict(cls, d: dict) -> SolarParameters:
         """Inverse of :meth:`to_dict`; unknown or missing keys raise ValueError."""
         if not isinstance(d, dict):
             raise ValueError(f"solar parameters: expected a dict, got {type(d).__name__}")

@@ -14,6 +14,17 @@ def _pyplot():
     return plt
 
 
+def save_figure(fig, path, dpi=110):
+    """Write ``fig`` to ``path`` atomically (format from the extension; :mod:`swerve.fileio`) and close it."""
+    from .fileio import atomic_path
+
+    try:
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, dpi=dpi)
+    finally:
+        _pyplot().close(fig)
+
+
 def sample_size_axis(ax, sizes):
     """A logarithmic x axis of sample sizes, labelled at exactly those sizes (plain numbers)."""
     from matplotlib.ticker import NullFormatter, NullLocator
@@ -60,8 +71,7 @@ def galaxy_curves(galaxy, path, r_min=0.5, r_max=200.0, measurements=()):
         ax.grid(alpha=0.3, which="both")
         ax.legend(fontsize=7, loc="lower left" if qty == "escape_speed" else "lower right")
     fig.suptitle(f"Galaxy model {galaxy.name}", fontsize=10)
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
+    save_figure(fig, path, dpi=120)
     return path
 
 
@@ -81,7 +91,7 @@ def corner_plot(samples, names, path, truths=None, weights=None):
     importance weights if the samples carry them."""
     import corner
 
-    plt = _pyplot()
+    _pyplot()  # the non-interactive backend, before corner imports pyplot's figures
     labels = [_LABELS.get(n, n) for n in names]
     scale = np.array([_SCALE.get(n, 1.0) for n in names])
     samples = np.asarray(samples) / scale
@@ -92,8 +102,7 @@ def corner_plot(samples, names, path, truths=None, weights=None):
         title_fmt=".3g", levels=(0.393, 0.865), plot_datapoints=False, fill_contours=True,
         color="#1f4e79", truth_color="#c0392b",
     )
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    save_figure(fig, path, dpi=110)
     return path
 
 
@@ -130,8 +139,7 @@ def posterior_predictive(stars, mu, sig, spec, path):
     ax.set_ylim(-span, span)
     ax.axhline(0, color="0.6", lw=0.8)
     ax.legend(fontsize=7, loc="upper right")
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    save_figure(fig, path, dpi=110)
     return path
 
 
@@ -154,6 +162,5 @@ def variants_plot(rows, path):
         ax.grid(alpha=0.3)
     axes[0][0].set_yticks(y)
     axes[0][0].set_yticklabels([r["variant"] for r in rows], fontsize=8)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    save_figure(fig, path, dpi=110)
     return path

@@ -28,15 +28,13 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from . import __version__
-from .bank import TrajectoryBank, _chmod_default, build_bank, effective_sample_size, sample_weights
-
+from .bank import TrajectoryBank, build_bank, effective_sample_size, sample_weights
 
 __all__ = [
     "DEFAULT_MIN_ESS",
@@ -183,7 +181,9 @@ class Population:
         signs = np.array([[sx, sy, sz] for sx in (1, -1) for sy in (1, -1) for sz in (1, -1)], dtype=float)
         pos = (self.pos[None, :, :] * signs[:, None, :]).reshape(-1, 3)
         vel = (self.vel[None, :, :] * signs[:, None, :]).reshape(-1, 3)
-        t8 = lambda a: np.tile(a, 8)
+        def t8(a):
+            return np.tile(a, 8)
+
         return Population(pos, vel, t8(self.weight) / 8.0, t8(self.orbit), t8(self.t_flight),
                           t8(self.v_launch), octant=False, meta=dict(self.meta))
 
@@ -598,7 +598,9 @@ _UNITS = {"ra": "deg", "dec": "deg", "distance": "kpc", "distance_err": "kpc", "
 
 
 def _jsonable(obj):
-    return json.loads(json.dumps(obj, default=lambda o: o.item() if hasattr(o, "item") else str(o)))
+    from .fileio import jsonable
+
+    return jsonable(obj)
 
 
 def _bank_region(selection, solar):
@@ -655,7 +657,6 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
     from astropy.table import Table
 
     from .frames import resolve_solar
-
     from .rng import as_generator
 
     rng, seed = as_generator(rng)
@@ -761,22 +762,17 @@ def write_mock(table, path) -> str:
     if not os.path.isdir(folder):
         raise ValueError(f"out: {path!r}: folder {folder} does not exist")
     fmt = _WRITE_FORMATS[ext]
-    fd, tmp = tempfile.mkstemp(prefix=".mock.", suffix=ext, dir=folder)
-    os.close(fd)
-    try:
-        out = table
-        if fmt == "fits":
-            out = table.copy(copy_data=False)
-            text = json.dumps(table.meta, separators=(",", ":"))
-            out.meta = {f"SWM{i // 60:05d}": text[i:i + 60]
-                        for i in range(0, len(text), 60)}
-        elif fmt == "ascii.csv":
-            out = table.copy(copy_data=False)
-            out.meta = {}
+    out = table
+    if fmt == "fits":
+        out = table.copy(copy_data=False)
+        text = json.dumps(table.meta, separators=(",", ":"))
+        out.meta = {f"SWM{i // 60:05d}": text[i:i + 60]
+                    for i in range(0, len(text), 60)}
+    elif fmt == "ascii.csv":
+        out = table.copy(copy_data=False)
+        out.meta = {}
+    from .fileio import atomic_path
+
+    with atomic_path(path) as tmp:
         out.write(tmp, format=fmt, overwrite=True)
-        _chmod_default(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
     return fmt

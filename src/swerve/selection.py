@@ -96,16 +96,14 @@ class Selection:
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
 
     @classmethod
-    def from_dict(cls, d: dict, source: str = "selection") -> "Selection":
+    def from_dict(cls, d: dict, source: str = "selection") -> Selection:
         names = {f.name for f in dataclasses.fields(cls)}
         unknown = set(d) - names
         if unknown:
-            import difflib
+            from .fileio import did_you_mean
 
             key = sorted(unknown)[0]
-            close = difflib.get_close_matches(key, sorted(names), n=1)
-            hint = f"; did you mean {close[0]!r}?" if close else f"; expected one of {sorted(names)}"
-            raise ValueError(f"{source}: unknown selection key {key!r}{hint}")
+            raise ValueError(f"{source}: unknown selection key {key!r}{did_you_mean(key, names, list_all=True)}")
         return cls(**d)
 
     @property

@@ -25,7 +25,6 @@ The training configuration is a TOML file (schema :data:`TRAIN_SCHEMA`; ``swerve
 
 from __future__ import annotations
 
-import difflib
 import time
 
 import numpy as np
@@ -159,8 +158,9 @@ class TrainingSetup:
 
     @staticmethod
     def _suggest(name, decl):
-        close = difflib.get_close_matches(name, list(decl), n=1)
-        return f"; did you mean {close[0]!r}?" if close else f"; expected one of {sorted(decl)}"
+        from .fileio import did_you_mean
+
+        return did_you_mean(name, decl, list_all=True)
 
     def _bounds(self, table, decl, where):
         out = {}

@@ -175,7 +175,7 @@ class SummarySpec:
         return d
 
     @classmethod
-    def from_dict(cls, d: dict) -> "SummarySpec":
+    def from_dict(cls, d: dict) -> SummarySpec:
         if d.get("tan_scale"):
             raise ValueError("summaries: recorded with tan_scale, an experimental cell model (scaled deflections) "
                              "that swerve no longer has (it biased the disk mass); retrain the emulator without it")

@@ -43,8 +43,10 @@ its true observables. For expectations over the star's posterior of its true obs
 (distance, proper motions, line-of-sight velocity), with priors flat in the observables
 except for the distance prior, the importance weights are the distance-prior weights
 ``exp(log_prior)`` of :class:`swerve.catalog.ErrorSamples`, normalised per star: 1 for
-stars with a distance measurement and under ``distance_prior="none"``, ``pi(d) d^2`` for
-parallax stars under a volume prior. The Jacobian ``J(d) = (kappa d)^2`` in
+stars with a distance measurement and under ``distance_prior="none"``; for parallax stars
+under a volume prior, the ratio of the parallax likelihood x distance prior to the density
+the parallax was drawn from (nearly even: that density is tabulated from the posterior
+itself, so negative and low signal-to-noise parallaxes are used too). The Jacobian ``J(d) = (kappa d)^2`` in
 ``ErrorSamples.log_weight`` is *not* used: it converts a density over the observables into
 one over the Galactocentric velocity, which a likelihood of a velocity density needs; here
 it would amount to a prior flat in velocity rather than in the observables, and would tilt
@@ -56,7 +58,6 @@ interval is reported as ``*_lo`` and ``*_hi``.
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import warnings
@@ -269,7 +270,9 @@ class TraceResult:
 
 
 def _jsonable(obj):
-    return json.loads(json.dumps(obj, default=lambda o: o.tolist() if hasattr(o, "tolist") else str(o)))
+    from .fileio import jsonable
+
+    return jsonable(obj)
 
 
 # --------------------------------------------------------------------------------------------
@@ -496,7 +499,6 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
     """
     from .catalog import draw_samples
     from .galaxy import Galaxy
-
     from .rng import as_generator
 
     rng, seed = as_generator(rng)
@@ -513,30 +515,16 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
 # outputs
 
 
-def _chmod_default(path):
-    """Give a temporary file (mkstemp: mode 0600) the permissions of a normally created file."""
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(path, 0o666 & ~mask)
-
-
 def _atomic(path, write):
-    """Call ``write(tmp)`` for a temporary file beside ``path`` (same suffix), then rename it."""
-    import tempfile
+    """Call ``write(tmp)`` for a temporary file beside ``path`` (same suffix), then rename it
+    (:func:`swerve.fileio.atomic_path`); a missing folder is a ValueError."""
+    from .fileio import atomic_path
 
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
+    folder = os.path.dirname(os.path.abspath(os.fspath(path)))
     if not os.path.isdir(folder):
-        raise ValueError(f"{path!r}: folder {folder} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=".trace.", suffix=os.path.splitext(path)[1], dir=folder)
-    os.close(fd)
-    try:
+        raise ValueError(f"{os.fspath(path)!r}: folder {folder} does not exist")
+    with atomic_path(path) as tmp:
         write(tmp)
-        _chmod_default(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 def write_trace_table(result: TraceResult, path) -> None:

@@ -87,9 +87,7 @@ import contextlib
 import datetime as _dt
 import json
 import math
-import os
 import re
-import tempfile
 import time
 import zipfile
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -262,27 +260,12 @@ def _point_path(points_dir: Path, index: int) -> Path:
     return points_dir / f"point_{index:05d}.npz"
 
 
-def _file_mode() -> int:
-    """Permissions of a new file under the current umask (mkstemp alone gives 0o600)."""
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
 def _atomic_write(path: Path, write: Callable) -> None:
-    """Write ``path`` all at once: ``write(fh)`` into a temp file beside it, then rename."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, _file_mode())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
+    """Write ``path`` all at once (:func:`swerve.fileio.write_atomic`): ``write(fh)`` into a
+    temporary file ``.<name>.<random><suffix>`` beside it, synced, then renamed."""
+    from .fileio import write_atomic
+
+    write_atomic(path, write)
 
 
 def _swerve_version() -> str:
@@ -368,7 +351,7 @@ def _open_run_dir(run_dir: Path, config_hash, names, points, master_seed, held_o
     else:
         # a temp file of an interrupted first write of run.json does not count
         if run_dir.exists() and any(
-            not (f.name.startswith(".run.json.") and f.name.endswith(".tmp"))
+            not f.name.startswith(".run.json.")
             for f in run_dir.iterdir()
         ):
             raise ValueError(
@@ -413,7 +396,7 @@ def _point_problem(path: Path, index: int, rec: dict, theta: np.ndarray) -> str 
 
 
 def _clean_temp_files(points_dir: Path) -> None:
-    for tmp in points_dir.glob(".point_*.npz.*.tmp"):
+    for tmp in points_dir.glob(".point_*.npz.*"):  # temporary files of interrupted writes
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
 

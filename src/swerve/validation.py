@@ -29,7 +29,7 @@ power
     fixed values). The fits leave the other parameters free (``others = "free"``, uniform
     priors over the emulator's domain) or fix them at their true values (``"fixed"``).
 
-The configuration is a TOML file (:data:`VALIDATE_SCHEMA`; ``swerve validate --print-config``
+The configuration is a TOML file (:data:`VALIDATE_SCHEMA`; ``swerve validate --template``
 writes a commented template). :func:`run_validation` returns the ``validation.json`` document
 (layout in its docstring) and writes it with the figures.
 
@@ -39,7 +39,6 @@ runs single-threaded to avoid oversubscription.
 
 from __future__ import annotations
 
-import json
 import math
 import os
 import time
@@ -49,6 +48,8 @@ from pathlib import Path
 import numpy as np
 
 from .config import Key, Schema, Section, load_config, validate
+from .fileio import write_text
+from .plots import save_figure
 
 # --------------------------------------------------------------------------- configuration --
 VALIDATE_SCHEMA = Schema("validate", (
@@ -657,8 +658,7 @@ def plot_accuracy(acc: dict, parameter_names, path_hist, path_map):
     ax[1].set_xticks(range(len(st)), list(st), rotation=45, ha="right")
     ax[1].set_ylabel("RMS z")
     fig.tight_layout()
-    fig.savefig(path_hist, dpi=100)
-    plt.close(fig)
+    save_figure(fig, path_hist, dpi=100)
     th = acc["theta"]
     worst = np.array([w for w, _ in acc["worst"]])
     d = th.shape[1]
@@ -670,8 +670,7 @@ def plot_accuracy(acc: dict, parameter_names, path_hist, path_map):
         ax.set_ylabel(parameter_names[b])
         fig.colorbar(sc, ax=ax, label="worst |z|")
     fig.tight_layout()
-    fig.savefig(path_map, dpi=100)
-    plt.close(fig)
+    save_figure(fig, path_map, dpi=100)
 
 
 def plot_calibration(cal: dict, path):
@@ -699,8 +698,7 @@ def plot_calibration(cal: dict, path):
     ax.set_ylabel("coverage (±2σ binomial)")
     ax.legend()
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+    save_figure(fig, path, dpi=100)
 
 
 def plot_power(power: dict, path):
@@ -731,31 +729,21 @@ def plot_power(power: dict, path):
         ax.set_title(f"errors: {e}")
         ax.legend(fontsize=8)
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+    save_figure(fig, path, dpi=100)
 
 
 # ---------------------------------------------------------------------------- driver --------
 def _jsonable(o):
-    if isinstance(o, dict):
-        return {str(k): _jsonable(v) for k, v in o.items()}
-    if isinstance(o, (list, tuple)):
-        return [_jsonable(v) for v in o]
-    if isinstance(o, np.ndarray):
-        return _jsonable(o.tolist())
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, float) and not math.isfinite(o):
-        return None
-    return o
+    from .fileio import jsonable
+
+    return jsonable(o)
 
 
 def write_json(path, doc):
-    """Write ``doc`` as JSON atomically (NaN written as null)."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(json.dumps(_jsonable(doc), indent=1))
-    os.replace(tmp, path)
+    """Write ``doc`` as strict JSON atomically (NaN written as null; :func:`swerve.fileio.write_json`)."""
+    from .fileio import write_json as _write
+
+    _write(path, doc, indent=1)
 
 
 def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> dict:
@@ -819,7 +807,7 @@ def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> 
     if cfg["power"]["enabled"]:
         pw = run_power(emulator_dir, emu, setup, cfg, np.random.default_rng(s_pow), log=log)
         plot_power(pw, out_dir / "power.png")
-        (out_dir / "power.md").write_text(power_table(pw) + "\n")
+        write_text(out_dir / "power.md", power_table(pw) + "\n")
         doc["settings"]["figures"].append("power.png")
         doc["power"] = pw
     else:

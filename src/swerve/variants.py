@@ -44,7 +44,7 @@ SHAPE = ("q_y", "q_z", "m_halo", "m_disk")
 
 def read_variants(path) -> list[dict]:
     """Parse and check a variants file (names unique, only known sections)."""
-    import difflib
+    from .fileio import did_you_mean
 
     try:
         with open(path, "rb") as fh:
@@ -67,9 +67,8 @@ def read_variants(path) -> list[dict]:
         bad = set(v) - _ALLOWED
         if bad:
             key = sorted(bad)[0]
-            close = difflib.get_close_matches(key, sorted(_ALLOWED), n=1)
-            hint = f"; did you mean {close[0]!r}?" if close else f"; expected one of {sorted(_ALLOWED)}"
-            raise ValueError(f"{path}: variant {v['name']!r}: unknown key {key!r}{hint}")
+            raise ValueError(f"{path}: variant {v['name']!r}: unknown key {key!r}"
+                             f"{did_you_mean(key, _ALLOWED, list_all=True)}")
     return vs
 
 
@@ -78,8 +77,8 @@ def slug(name: str) -> str:
 
 
 def _merge(cfg: dict, variant: dict) -> dict:
-    from .fit import FIT_SCHEMA
     from .config import validate
+    from .fit import FIT_SCHEMA
 
     merged = {k: dict(v) for k, v in cfg.items()}
     for sec, vals in variant.items():
@@ -119,7 +118,8 @@ def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, over
 
     vs = read_variants(variants_path)
     out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"{out}: a file is there, not a folder for the variants")
     tasks = []
     for v in vs:
         vcfg = _merge(cfg, v)
@@ -129,7 +129,16 @@ def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, over
         if not emu.exists():
             raise ValueError(f"{variants_path}: variant {v['name']!r}: no emulator folder at {emu}")
         tasks.append((catalog, emu, out / slug(v["name"]), vcfg, v["name"]))
-    results = Parallel(n_jobs=jobs)(delayed(_one)(t) for t in tasks)
+    created = not out.exists()
+    out.mkdir(parents=True, exist_ok=True)  # once every variant's configuration is known to be good
+    try:
+        results = Parallel(n_jobs=jobs)(delayed(_one)(t) for t in tasks)
+    except Exception:
+        if created:  # a failed run leaves nothing behind
+            import shutil
+
+            shutil.rmtree(out, ignore_errors=True)
+        raise
 
     rows = []
     for name, emu, s in results:
@@ -148,9 +157,10 @@ def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, over
     flags = _flags(rows)
     t = Table(rows=rows)
     t.meta = {"flags": flags, "catalog": str(catalog)}
-    tmp = out / "variants.tmp.ecsv"
-    t.write(tmp, format="ascii.ecsv", overwrite=True)
-    tmp.replace(out / "variants.ecsv")
+    from .fileio import atomic_path
+
+    with atomic_path(out / "variants.ecsv") as tmp:
+        t.write(tmp, format="ascii.ecsv", overwrite=True)
     plots.variants_plot(rows, out / "variants.png")
 
     lines = [f"swerve fit --variants: {len(rows)} variants of {catalog}", ""]

@@ -2,22 +2,24 @@
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
-from ..cli import EXIT_OK, CommandError
-
-DEFAULT_EMULATOR = Path(__file__).resolve().parents[3] / "emulators" / "default"
+from ._common import (
+    EXIT_OK,
+    METAVAR,
+    CommandError,
+    add_template_flag,
+    check_option,
+    emulator_option,
+    existing_catalog,
+)
 
 
 def default_emulator() -> Path:
-    """The shipped default emulator: $SWERVE_EMULATOR, else ./emulators/default (a clone of the
-    repository), else emulators/default beside an editable install's sources."""
-    env = os.environ.get("SWERVE_EMULATOR")
-    if env:
-        return Path(env)
-    here = Path("emulators") / "default"
-    return here if here.exists() else DEFAULT_EMULATOR
+    """The shipped default emulator (see :func:`swerve.resources.default_emulator`)."""
+    from ..resources import default_emulator as _default
+
+    return _default()
 
 
 def add_parser(sub):
@@ -36,25 +38,59 @@ def add_parser(sub):
         ),
     )
     p.add_argument("catalog", metavar="CATALOG", nargs="?", help="observed (or mock) catalog")
-    p.add_argument("--emulator", metavar="PATH", default=None,
-                   help="emulator folder (default: the shipped emulators/default or $SWERVE_EMULATOR)")
-    p.add_argument("--config", metavar="FIT.toml", help="fit configuration (priors, errors, sampler); see --template")
-    p.add_argument("--out", metavar="DIR", default=None, help="run folder (default: fit-<catalog name>)")
+    p.add_argument("--emulator", metavar=METAVAR["emulator"], default=None,
+                   help="emulator folder (default: the shipped default emulator, or $SWERVE_EMULATOR)")
+    p.add_argument("--config", metavar=METAVAR["config"], help="fit configuration (priors, errors, sampler); see --template")
+    p.add_argument("--out", metavar=METAVAR["out_dir"], default=None, help="run folder (default: fit-<catalog name>)")
     p.add_argument("--variants", metavar="VARIANTS.toml", help="run the listed nuisance variants and compare them")
-    p.add_argument("--seed", type=int, default=None, help="sampler seed (overrides [sampler] seed)")
-    p.add_argument("--max-steps", type=int, default=None, help="step cap (overrides [sampler] max_steps)")
-    p.add_argument("--samples", type=int, default=None, help="distance samples per star (overrides [errors] samples)")
-    p.add_argument("--columns", default=None, help="column mapping, e.g. ra=RA_deg,dec=DE_deg")
-    p.add_argument("--units", default=None, help="units of unit-less CSV columns, e.g. distance=pc")
+    p.add_argument("--seed", type=int, default=None, metavar=METAVAR["seed"], help="sampler seed (overrides [sampler] seed)")
+    p.add_argument("--max-steps", type=int, default=None, metavar="N", help="step cap (overrides [sampler] max_steps)")
+    p.add_argument("--samples", type=int, default=None, metavar="K",
+                   help="distance samples per star (overrides [errors] samples)")
+    p.add_argument("--columns", default=None, metavar=METAVAR["columns"], help="column mapping, e.g. ra=RA_deg,dec=DE_deg")
+    p.add_argument("--units", default=None, metavar=METAVAR["units"], help="units of unit-less CSV columns, e.g. distance=pc")
     p.add_argument("--drop-invalid", action="store_true", help="drop invalid rows (reported) instead of refusing")
-    p.add_argument("--jobs", type=int, default=1, help="variants run in parallel (with --variants)")
+    _add_distance_options(p)
+    p.add_argument("--jobs", type=int, default=1, metavar=METAVAR["jobs"], help="variants run in parallel (with --variants)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
-    p.add_argument("--template", "--print-config", dest="template", action="store_true",
-                   help="print a documented fit configuration and exit")
+    add_template_flag(p, help="print a documented fit configuration and exit")
     p.set_defaults(func=run)
 
 
+#: command-line options that override a fit configuration key: option -> (section, key, attribute)
+_OPTION_KEYS = {"--seed": ("sampler", "seed", "seed"), "--max-steps": ("sampler", "max_steps", "max_steps"),
+                "--samples": ("errors", "samples", "samples"),
+                "--length-scale": ("errors", "length_scale", "length_scale"),
+                "--parallax-zero-point": ("catalog", "parallax_zero_point", "parallax_zero_point")}
+
+
+def _add_distance_options(p):
+    from ..catalog import DISTANCE_PRIORS
+
+    p.add_argument("--distance-prior", default=None, choices=DISTANCE_PRIORS,
+                   help="distance prior of stars whose distance comes from the parallax (overrides [errors] "
+                        "distance_prior; default none)")
+    p.add_argument("--length-scale", type=float, default=None, metavar="KPC",
+                   help="length scale L of --distance-prior exponential-length (overrides [errors] length_scale)")
+    p.add_argument("--parallax-zero-point", type=float, default=None, metavar="MAS",
+                   help="subtract this zero point from every parallax (overrides [catalog] parallax_zero_point; "
+                        "default 0; e.g. -0.017 for Gaia EDR3's global offset)")
+
+
+def _distance_overrides(args, o: dict) -> None:
+    if args.distance_prior is not None:
+        o.setdefault("errors", {})["distance_prior"] = args.distance_prior
+    if args.length_scale is not None:
+        o.setdefault("errors", {})["length_scale"] = args.length_scale
+    if args.parallax_zero_point is not None:
+        o.setdefault("catalog", {})["parallax_zero_point"] = args.parallax_zero_point
+
+
 def _overrides(args) -> dict:
+    from ..fit import FIT_SCHEMA
+
+    for option, (section, key, attr) in _OPTION_KEYS.items():  # each named by its flag when wrong
+        check_option(option, getattr(args, attr), FIT_SCHEMA, section, key)
     o: dict = {}
     if args.seed is not None:
         o.setdefault("sampler", {})["seed"] = args.seed
@@ -68,6 +104,7 @@ def _overrides(args) -> dict:
         o.setdefault("catalog", {})["units"] = args.units
     if args.drop_invalid:
         o.setdefault("catalog", {})["drop_invalid"] = True
+    _distance_overrides(args, o)
     return o
 
 
@@ -80,12 +117,13 @@ def run(args) -> int:
         return EXIT_OK
     if args.catalog is None:
         raise CommandError("expected a CATALOG file (or --template)")
-    if not Path(args.catalog).exists():
-        raise CommandError(f"{args.catalog}: no such catalog file")
-    emulator = Path(args.emulator) if args.emulator else default_emulator()
-    if not emulator.exists():
-        raise CommandError(f"{emulator}: no emulator folder there (train one with `swerve train`, or pass --emulator)")
+    existing_catalog(args.catalog)
+    if args.jobs < 1:
+        raise CommandError(f"--jobs {args.jobs}: expected a positive number of worker processes")
+    emulator = emulator_option(args.emulator)
     out = Path(args.out) if args.out else Path(f"fit-{Path(args.catalog).stem}")
+    if out.exists() and not out.is_dir():
+        raise CommandError(f"--out {out}: a file is there; expected a run folder (new or of an earlier fit)")
     cfg = load_fit_config(args.config, _overrides(args))
     if args.variants:
         from ..variants import run_variants

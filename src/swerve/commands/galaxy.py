@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import json
-import os
 from pathlib import Path
 
 from .. import __version__
-from ..cli import CommandError, EXIT_OK, atomic_write_path, parse_param_list
+from ._common import EXIT_OK, METAVAR, CommandError, parse_param_list
+
 
 def add_parser(sub):
     p = sub.add_parser(
@@ -20,8 +20,8 @@ def add_parser(sub):
             "both curves with the measurements and their error bars."
         ),
     )
-    p.add_argument("--model", default=None, help="named Galaxy model (default: %(default)s → the package default)")
-    p.add_argument("--param", action="append", metavar="NAME=VALUE", default=[],
+    p.add_argument("--model", default=None, metavar="NAME", help="named Galaxy model (default: the package default)")
+    p.add_argument("--param", action="append", metavar=METAVAR["param"], default=[],
                    help="change one Galaxy parameter, e.g. --param q_z=0.8 (repeatable)")
     p.add_argument("--halo-flattening", choices=None, default=None, metavar="{potential,density}",
                    help="flatten the halo in the potential (fast, analytic) or in the density (physical)")
@@ -97,13 +97,7 @@ def run(args) -> int:
         out_path = Path(args.plot)
         if not out_path.parent.exists():
             raise CommandError(f"--plot {args.plot}: folder {out_path.parent} does not exist")
-        tmp = atomic_write_path(out_path)
-        try:
-            galaxy_curves(g, tmp, measurements=MEASUREMENTS)
-            os.replace(tmp, out_path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
+        galaxy_curves(g, out_path, measurements=MEASUREMENTS)  # written atomically
         if not args.json:
             print(f"  Plot written to {out_path}")
     return EXIT_OK

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..cli import EXIT_OK
+from ._common import EXIT_OK
 
 
 def add_parser(sub):

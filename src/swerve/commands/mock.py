@@ -2,7 +2,7 @@
 
 Every option can also be given in a TOML file (``--config``); options on the command line win
 over the file. The file's schema is :data:`MOCK_SCHEMA` (validated by :mod:`swerve.config`;
-``swerve mock --print-config`` writes a commented template).
+``swerve mock --template`` writes a commented template).
 """
 
 from __future__ import annotations
@@ -10,7 +10,7 @@ from __future__ import annotations
 import dataclasses
 import logging
 
-from ..cli import EXIT_OK, CommandError, parse_param_list
+from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag, check_option, parse_param_list
 
 log = logging.getLogger("swerve")
 
@@ -80,19 +80,20 @@ def add_parser(sub):
             "to the launch model, select the present-day stars, draw N of them, add measurement errors "
             "and write a catalog (ECSV, FITS or CSV, from the file name) with the columns and units every "
             "other swerve command reads; the true parameters and all settings go into the table's meta. "
-            "Every option can be set in a TOML file (--config; see --print-config); the command line wins. "
+            "Every option can be set in a TOML file (--config; see --template); the command line wins. "
             "Error laws are A[,B[,P]]: sigma(d) = A + B (d/10 kpc)^P at the true heliocentric distance."
         ),
     )
-    p.add_argument("--config", metavar="FILE.toml", help="read options from a TOML file")
-    p.add_argument("--print-config", "--template", dest="print_config", action="store_true", help="print the configuration template (with the options given) and exit")
-    p.add_argument("--n", type=int, default=None, help="number of stars (default 300)")
-    p.add_argument("--seed", type=int, default=None, help="seed of every random draw (default 0; recorded)")
+    p.add_argument("--config", metavar=METAVAR["config"], help="read options from a TOML file")
+    add_template_flag(p, help="print the configuration template (with the options given) and exit")
+    p.add_argument("--n", type=int, default=None, metavar="N", help="number of stars (default 300)")
+    p.add_argument("--seed", type=int, default=None, metavar=METAVAR["seed"],
+                   help="seed of every random draw (default 0; recorded)")
     p.add_argument("--out", metavar="FILE", help="output catalog: .ecsv, .fits or .csv")
-    p.add_argument("--model", default=None, help="named Galaxy model (default: the package default)")
+    p.add_argument("--model", default=None, metavar="NAME", help="named Galaxy model (default: the package default)")
     p.add_argument("--halo-flattening", default=None, choices=("potential", "density"),
                    help="flatten the halo in the potential (fast, analytic) or in the density (physical)")
-    p.add_argument("--param", action="append", metavar="NAME=VALUE", default=[],
+    p.add_argument("--param", action="append", metavar=METAVAR["param"], default=[],
                    help="a Galaxy or launch-model parameter by its declared name, e.g. q_z=0.85, q_y=1.1, "
                         "v_min=900 (repeatable)")
     p.add_argument("--launch", default=None, choices=("power-law", "hills"),
@@ -113,11 +114,11 @@ def add_parser(sub):
     p.add_argument("--error-pm", default=None, metavar="A[,B[,P]]", help="proper-motion error law, mas/yr (default 0,0.01,1)")
     p.add_argument("--error-pm-corr", type=float, default=None, metavar="RHO", help="pmra-pmdec error correlation (default 0)")
     p.add_argument("--error-vlos", default=None, metavar="A[,B[,P]]", help="line-of-sight velocity error law, km/s (default 5)")
-    p.add_argument("--bank-size", type=int, default=None, help="orbits in the trajectory bank (default 4000)")
+    p.add_argument("--bank-size", type=int, default=None, metavar="N", help="orbits in the trajectory bank (default 4000)")
     p.add_argument("--bank-file", default=None, metavar="FILE.npz", help="use a saved trajectory bank")
     p.add_argument("--save-bank", default=None, metavar="FILE.npz", help="save the bank built here")
     p.add_argument("--bank-dt", type=float, default=None, metavar="MYR", help="flight-time step of the bank (default 1)")
-    p.add_argument("--solar", default=None, help="solar-parameter set (default v4.0)")
+    p.add_argument("--solar", default=None, metavar="NAME", help="solar-parameter set (default v4.0)")
     p.add_argument("--truth", action="store_true", default=None, help="also write true values (true_* columns)")
     p.set_defaults(func=run)
 
@@ -155,6 +156,12 @@ def _config(args):
     from ..config import load_config, validate
 
     schema = _schema()
+    for option, section, key, value in (("--n", "", "n", args.n), ("--seed", "", "seed", args.seed),
+                                        ("--flight-time-max", "launch", "flight_time_max", args.flight_time_max),
+                                        ("--error-pm-corr", "errors", "corr_pmra_pmdec", args.error_pm_corr),
+                                        ("--bank-size", "bank", "size", args.bank_size),
+                                        ("--bank-dt", "bank", "dt", args.bank_dt)):
+        check_option(option, value, schema, section, key)  # a bad value named by its flag
     cfg = load_config(args.config, schema) if args.config else validate({}, schema, source="<defaults>")
     top, gal, lau, sel, err, bank = (cfg[k] for k in ("", "galaxy", "launch", "selection", "errors", "bank"))
     for opt, key in (("n", "n"), ("seed", "seed"), ("out", "out"), ("solar", "solar"), ("truth", "include_truth")):
@@ -252,7 +259,7 @@ def run(args) -> int:
     from ..population import _bank_region, make_mock, write_mock
 
     cfg, params, schema = _config(args)
-    if args.print_config:
+    if args.template:
         print(template(schema, cfg))
         return EXIT_OK
     top, lau, bcfg = cfg[""], cfg["launch"], cfg["bank"]

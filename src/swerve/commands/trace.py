@@ -2,10 +2,19 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 from pathlib import Path
 
-from ..cli import EXIT_ERROR, EXIT_OK, CommandError, parse_param_list
+from ._common import (
+    EXIT_ERROR,
+    EXIT_OK,
+    METAVAR,
+    CommandError,
+    DeprecatedAlias,
+    existing_catalog,
+    parse_param_list,
+)
 
 
 def add_parser(sub):
@@ -37,9 +46,11 @@ def add_parser(sub):
             "problem is listed, nothing is written), 2 bad usage.",
     )
     p.add_argument("catalog", metavar="CATALOG", help="observed (or mock) catalog")
-    p.add_argument("--model", default=None, help="named Galaxy model (default: the package default)")
-    p.add_argument("--galaxy-param", action="append", metavar="NAME=VALUE", default=[],
-                   help="change one Galaxy parameter, e.g. --galaxy-param q_z=0.9 (repeatable; see `swerve galaxy`)")
+    p.add_argument("--model", default=None, metavar="NAME", help="named Galaxy model (default: the package default)")
+    p.add_argument("--param", action="append", metavar=METAVAR["param"], default=[],
+                   help="change one Galaxy parameter, e.g. --param q_z=0.9 (repeatable; see `swerve galaxy`)")
+    p.add_argument("--galaxy-param", dest="param", action=DeprecatedAlias, new="--param", append=True,
+                   help=argparse.SUPPRESS)  # the old spelling, still accepted
     p.add_argument("--halo-flattening", default=None, choices=("potential", "density"),
                    help="flatten the halo in the potential (fast, analytic) or in the density (physical)")
     p.add_argument("--samples", type=int, default=500, metavar="K",
@@ -57,15 +68,18 @@ def add_parser(sub):
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="summary plot (default: trace-<catalog name>.png in the current folder)")
     p.add_argument("--no-plot", action="store_true", help="do not draw the plot")
-    p.add_argument("--columns", default=None, help="column mapping, e.g. ra=RA_deg,dec=DE_deg")
-    p.add_argument("--units", default=None, help="units of unit-less CSV columns, e.g. distance=pc")
+    p.add_argument("--columns", default=None, metavar=METAVAR["columns"], help="column mapping, e.g. ra=RA_deg,dec=DE_deg")
+    p.add_argument("--units", default=None, metavar=METAVAR["units"], help="units of unit-less CSV columns, e.g. distance=pc")
     p.add_argument("--drop-invalid", action="store_true", help="drop invalid rows (reported) instead of refusing")
-    p.add_argument("--seed", type=int, default=0, help="seed of the error samples (default: %(default)s; recorded)")
+    p.add_argument("--seed", type=int, default=0, metavar=METAVAR["seed"], help="seed of the error samples (default: %(default)s; recorded)")
     p.add_argument("--distance-prior", default="none", choices=DISTANCE_PRIORS,
                    help="distance prior of stars whose distance comes from the parallax (default: %(default)s)")
     p.add_argument("--length-scale", type=float, default=10.0, metavar="KPC",
                    help="length scale L of --distance-prior exponential-length (default: %(default)s kpc)")
-    p.add_argument("--solar", default=None, help="solar-parameter set (default v4.0)")
+    p.add_argument("--parallax-zero-point", type=float, default=0.0, metavar="MAS",
+                   help="subtract this zero point from every parallax (default: %(default)s; e.g. -0.017 for "
+                        "Gaia EDR3's global offset)")
+    p.add_argument("--solar", default=None, metavar="NAME", help="solar-parameter set (default v4.0)")
     p.add_argument("--top", type=int, default=20, metavar="N",
                    help="stars listed in the terminal summary, by origin probability (default: %(default)s)")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
@@ -97,18 +111,19 @@ def run(args) -> int:
         raise CommandError(f"--seed {args.seed}: expected a non-negative integer")
     if args.top < 0:
         raise CommandError(f"--top {args.top}: expected a non-negative integer")
+    existing_catalog(args.catalog)
     stem = Path(args.catalog).name.split(".")[0] or "catalog"
     out = _check_out(Path(args.out) if args.out else Path(f"trace-{stem}.ecsv"), "--out", (".ecsv",))
     plot = None
     if not args.no_plot:
         plot = _check_out(Path(args.plot) if args.plot else Path(f"trace-{stem}.png"), "--plot",
                           (".png", ".pdf", ".svg"))
-    params = parse_param_list(args.galaxy_param, option="--galaxy-param")
+    params = parse_param_list(args.param, option="--param")
     galaxy = Galaxy.from_name(args.model or DEFAULT_GALAXY, halo_flattening=args.halo_flattening, **params)
     solar = resolve_solar(args.solar)
     try:
         catalog = read_catalog(args.catalog, columns=args.columns, units=args.units,
-                               drop_invalid=args.drop_invalid)
+                               drop_invalid=args.drop_invalid, parallax_zero_point=args.parallax_zero_point)
     except CatalogError as exc:
         problems = exc.problems or [str(exc)]
         for problem in problems:
@@ -116,6 +131,11 @@ def run(args) -> int:
         if len(problems) > 1:
             print(f"swerve trace: {len(problems)} problems; nothing written", file=sys.stderr)
         return EXIT_ERROR
+    from ..catalog import distance_warning
+
+    for hint in catalog.hints + (distance_warning(catalog, args.distance_prior),):
+        if hint:
+            print(f"swerve trace: warning: {hint}", file=sys.stderr)
 
     from tqdm import tqdm
 

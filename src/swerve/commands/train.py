@@ -7,7 +7,7 @@ import json
 import time
 from pathlib import Path
 
-from ..cli import EXIT_OK, CommandError
+from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag
 
 
 def add_parser(sub):
@@ -26,15 +26,14 @@ def add_parser(sub):
     p.add_argument("config", nargs="?", help="training configuration (TOML); see --template")
     p.add_argument("--out", metavar="RUN_DIR", help="run folder (created; resumed when it exists)")
     p.add_argument("--held-out", action="store_true", help="simulate the held-out design instead")
-    p.add_argument("--jobs", type=int, default=-1, metavar="N",
+    p.add_argument("--jobs", type=int, default=-1, metavar=METAVAR["jobs"],
                    help="local worker processes (default: all cores; 1 runs serially)")
     g = p.add_mutually_exclusive_group()
     g.add_argument("--dask", metavar="ADDRESS", help="run on an existing dask.distributed scheduler")
     g.add_argument("--dask-local", type=int, metavar="N", help="start a local Dask cluster of N workers")
-    p.add_argument("--emulator-out", metavar="DIR", help="write the emulator here (default RUN_DIR/emulator)")
+    p.add_argument("--emulator-out", metavar=METAVAR["out_dir"], help="write the emulator here (default RUN_DIR/emulator)")
     p.add_argument("--no-fit", action="store_true", help="simulate only; do not fit the emulator")
-    p.add_argument("--template", "--print-config", dest="template", action="store_true",
-                   help="print a documented configuration with every default")
+    add_template_flag(p, help="print a documented configuration with every default and exit")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 

@@ -7,7 +7,7 @@ Writes to ``--out``: ``validation.json`` (sections ``settings``, ``accuracy``, `
 
 from __future__ import annotations
 
-from ..cli import EXIT_OK, CommandError
+from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag, emulator_option, worker_pool
 
 
 def add_parser(sub):
@@ -20,17 +20,19 @@ def add_parser(sub):
             "simulation-based calibration (rank histograms and 68%/95% coverage with binomial error bars, "
             "from catalogs drawn from the held-out full simulations) and power against sample size "
             "(how often the posterior median of q_z, rounded to a grid, is the true value), side by side "
-            "with the KS-test baseline. Settings come from a TOML file (--config; see --print-config); "
+            "with the KS-test baseline. Settings come from a TOML file (--config; see --template); "
             "the defaults are the full run, which takes hours: training/validate-ci.toml is a small one."
         ),
     )
-    p.add_argument("--emulator", metavar="PATH", help="emulator folder (made by swerve train)")
-    p.add_argument("--held-out", metavar="RUN_DIR", help="held-out run folder of the same training configuration")
-    p.add_argument("--out", metavar="REPORT_DIR", help="report folder (created)")
-    p.add_argument("--config", metavar="VALIDATE.toml", help="validation settings (default: the full run)")
-    p.add_argument("--print-config", "--template", dest="print_config", action="store_true", help="print the settings template (with --config's values) and exit")
-    p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes for the fits (overrides n_jobs)")
-    p.add_argument("--seed", type=int, default=None, help="master seed (overrides seed)")
+    p.add_argument("--emulator", metavar=METAVAR["emulator"],
+                   help="emulator folder made by swerve train (default: the shipped default emulator, or "
+                        "$SWERVE_EMULATOR)")
+    p.add_argument("--held-out", metavar=METAVAR["out_dir"], help="held-out run folder of the same training configuration")
+    p.add_argument("--out", metavar=METAVAR["out_dir"], help="report folder (created)")
+    p.add_argument("--config", metavar=METAVAR["config"], help="validation settings (default: the full run)")
+    add_template_flag(p, help="print the settings template (with --config's values) and exit")
+    p.add_argument("--jobs", type=int, default=None, metavar=METAVAR["jobs"], help="worker processes for the fits (overrides n_jobs)")
+    p.add_argument("--seed", type=int, default=None, metavar=METAVAR["seed"], help="master seed (overrides seed)")
     p.set_defaults(func=run)
 
 
@@ -38,12 +40,13 @@ def run(args) -> int:
     from ..config import load_config, template
     from ..validation import VALIDATE_SCHEMA, load_validate_config, run_validation
 
-    if args.print_config:
+    if args.template:
         print(template(VALIDATE_SCHEMA, load_config(args.config, VALIDATE_SCHEMA) if args.config else None))
         return EXIT_OK
-    for opt, val in (("--emulator", args.emulator), ("--held-out", args.held_out), ("--out", args.out)):
+    for opt, val in (("--held-out", args.held_out), ("--out", args.out)):
         if not val:
             raise CommandError(f"{opt} is required")
+    emulator = emulator_option(args.emulator)
     cfg = load_validate_config(args.config)
     if args.jobs is not None:
         if args.jobs < 1:
@@ -53,7 +56,8 @@ def run(args) -> int:
         if args.seed < 0:
             raise CommandError(f"--seed {args.seed}: expected a non-negative integer")
         cfg["seed"] = args.seed
-    doc = run_validation(args.emulator, args.held_out, args.out, cfg, log=lambda m: print(f"swerve validate: {m}"))
+    with worker_pool():
+        doc = run_validation(emulator, args.held_out, args.out, cfg, log=lambda m: print(f"swerve validate: {m}"))
     cal = doc["calibration"]
     if "pass" in cal:
         print(f"swerve validate: calibration {'PASS' if cal['pass'] else 'FAIL'} "

@@ -19,7 +19,6 @@ from .model import (
 from .nfw_density import NFWHaloDensityFlat
 from .params import Parameter
 
-
 __all__ = [
     "Component",
     "DEFAULT_GALAXY",
