@@ -29,7 +29,37 @@ def add_parser(sub):
                    help="radii in kpc at which to report speeds (default: %(default)s)")
     p.add_argument("--plot", metavar="FILE.png", help="draw v_c(R) and v_esc(r) with measurements")
     p.add_argument("--json", action="store_true", help="print the model and speeds as JSON instead")
+    p.add_argument("--lmc", action="store_true",
+                   help="also show the Large Magellanic Cloud: its parameters and sources, present state and "
+                        "past orbit in this Galaxy (with dynamical friction and the Milky Way's reflex) beside "
+                        "published values")
+    p.add_argument("--lmc-mass", type=float, default=None, metavar="MSUN",
+                   help="LMC mass for --lmc (default 1.38e11 Msun, Erkal et al. 2019)")
     p.set_defaults(func=run)
+
+
+def _lmc_summary(galaxy, args) -> dict:
+    from ..galaxy.lmc import LMC, lmc_summary
+
+    lmc = LMC() if args.lmc_mass is None else LMC(m_lmc=args.lmc_mass)
+    return lmc_summary(galaxy, lmc)
+
+
+def _print_lmc(s: dict) -> None:
+    print("  Large Magellanic Cloud (a moving Hernquist sphere; rigid Milky Way with its reflex):")
+    for name, p in s["parameters"].items():
+        print(f"    {name:<10} = {p['value']:<11.5g} {p['unit']:<9} {p['doc']}")
+        print(f"    {'':<10}   source: {p['source']}")
+    pr, o, pub = s["present"], s["orbit"], s["published"]
+    print(f"    present: r = {pr['r_kpc']:.2f} kpc from the Galactic Centre, v_r = {pr['v_r_kms']:+.1f} km/s, "
+          f"v_t = {pr['v_t_kms']:.1f} km/s")
+    print(f"    last pericentre: {o['r_peri_kpc']:.1f} kpc at {o['t_peri_myr']:.1f} Myr "
+          f"(published ~{pub['r_peri_kpc']['value']:g} kpc, ~{-pub['t_peri_myr']['value']:g} Myr ago: "
+          f"{pub['r_peri_kpc']['source']})")
+    print(f"    speed the Galactic Centre gained toward it since -500 Myr: "
+          f"{o['gc_speed_gained_since_500myr_kms']:.1f} km/s (measured reflex {pub['reflex_kms']['value']:g} km/s: "
+          f"{pub['reflex_kms']['source']})")
+    print()
 
 
 def run(args) -> int:
@@ -48,6 +78,7 @@ def run(args) -> int:
     vc = g.circular_velocity(radii)
     vesc = g.escape_speed_at_radius(radii)
     region = g.negative_density_region()
+    lmc = _lmc_summary(g, args) if (args.lmc or args.lmc_mass is not None) else None
     if args.json:
         out = {
             "swerve_version": __version__,
@@ -57,6 +88,8 @@ def run(args) -> int:
             "escape_speed_kms": vesc.tolist(),
             "negative_density_region": region,
         }
+        if lmc is not None:
+            out["lmc"] = {k: v for k, v in lmc.items() if k != "track"}
         print(json.dumps(out, indent=2))
     else:
         print(f"Galaxy model {g.name}  (swerve {__version__}; halo flattened in the {g.halo_flattening})")
@@ -73,6 +106,8 @@ def run(args) -> int:
                 if p.source and not changed:
                     print(f"    {'':<8}   source: {p.source}")
         print()
+        if lmc is not None:
+            _print_lmc(lmc)
         print(f"  {'r [kpc]':>8}  {'v_c [km/s]':>10}  {'v_esc [km/s]':>12}")
         for r, a, b in zip(radii, vc, vesc):
             print(f"  {r:8.3f}  {a:10.1f}  {b:12.1f}")

@@ -8,6 +8,7 @@ from .components import (
     PointMass,
     negative_density_radius_scaled,
 )
+from .lmc import LMC, LMC_PARAMETERS, LMCTrack, lmc_orbit, lmc_summary
 from .model import (
     DEFAULT_GALAXY,
     GALAXY_MODELS,
@@ -26,6 +27,9 @@ __all__ = [
     "Galaxy",
     "HALO_FLATTENINGS",
     "HernquistBulge",
+    "LMC",
+    "LMC_PARAMETERS",
+    "LMCTrack",
     "MiyamotoNagaiDisk",
     "NFWHaloDensityFlat",
     "NFWHaloPotentialFlat",
@@ -33,5 +37,7 @@ __all__ = [
     "Parameter",
     "PointMass",
     "component_class",
+    "lmc_orbit",
+    "lmc_summary",
     "negative_density_radius_scaled",
 ]
