@@ -187,3 +187,75 @@ def test_pareto_k_recovers_the_tail_shape(k):
 
     w = genpareto(c=k).rvs(20000, random_state=np.random.default_rng(5))
     assert abs(pareto_k(np.log(w)) - k) < 0.25
+
+
+# --------------------------------------------------------------------- posterior sanity warnings
+def _priors():
+    return resolve_priors(["a", "f_hvs"], [[0.0, 1.0], [0.0, 1.0]])
+
+
+def test_warning_for_mass_piled_against_a_bound():
+    """More than 20% of the mass within 2% of the range from a bound is reported, naming the
+    parameter and the side; a posterior in the middle is not; the mixture's fraction at its
+    physical bound 1 (a clean catalog) is not."""
+    from swerve.sampling import posterior_warnings
+
+    rng = np.random.default_rng(0)
+    mid = np.column_stack([rng.normal(0.5, 0.1, 4000), rng.normal(0.5, 0.1, 4000)])
+    assert posterior_warnings(mid, ["a", "f_hvs"], _priors()) == []
+    piled = np.column_stack([np.abs(rng.normal(0.0, 0.02, 4000)), 1.0 - np.abs(rng.normal(0.0, 0.01, 4000))])
+    w = posterior_warnings(piled, ["a", "f_hvs"], _priors())
+    assert len(w) == 1 and w[0].startswith("a: ") and "lower bound 0" in w[0]
+
+
+def test_warning_for_several_modes():
+    """A 60/40 mixture of two unit Gaussians 6 sd apart has two modes; a Gaussian, a skewed gamma
+    and a uniform have one (the generating densities are known)."""
+    from swerve.sampling import _modes, posterior_warnings
+
+    rng = np.random.default_rng(1)
+    two = np.concatenate([rng.normal(0, 1, 3000), rng.normal(6, 1, 2000)])
+    assert _modes(two) == 2
+    for one in (rng.normal(size=5000), rng.gamma(2.0, size=5000), rng.uniform(size=5000)):
+        assert _modes(one) == 1
+    x = np.column_stack([(two + 4) / 14, rng.uniform(0.3, 0.7, 5000)])
+    w = posterior_warnings(x, ["a", "f_hvs"], _priors())
+    assert len(w) == 1 and "2 separated modes" in w[0]
+
+
+def test_warnings_for_kappa_and_catalog_size():
+    from swerve.sampling import CALIBRATED_STARS, KAPPA_EXTREME, posterior_warnings
+
+    x = np.random.default_rng(2).uniform(0.3, 0.7, (2000, 2))
+    assert posterior_warnings(x, ["a", "f_hvs"], _priors(), kappa=[0.1, 1.9], n_stars=CALIBRATED_STARS) == []
+    w = posterior_warnings(x, ["a", "f_hvs"], _priors(), kappa=[1.5, KAPPA_EXTREME + 1], n_stars=300)
+    assert len(w) == 2 and "5.00" in w[0] and "300 stars" in w[1]
+
+
+def test_warnings_for_a_catalog_made_with_another_model():
+    """The demo catalog is made on the default emulator's model (examples/make_demo.py): no
+    warning; the same meta with another disk scale length, launch-speed range and a velocity cut
+    gives one warning each, naming the value; a narrower spatial cut (r_max) gives none."""
+    import copy
+
+    from astropy.table import Table
+
+    from swerve.emulate import load
+    from swerve.sampling import posterior_warnings
+
+    emu = load("emulators/default")
+    meta = dict(Table.read("examples/demo.ecsv").meta)
+    pri = resolve_priors(emu.parameter_names, emu.bounds)
+    lo, hi = np.asarray(emu.bounds).T
+    x = lo + (hi - lo) * np.random.default_rng(3).uniform(0.3, 0.7, (2000, len(lo)))
+    assert posterior_warnings(x, emu.parameter_names, pri, catalog_meta=meta, emulator_meta=emu.metadata) == []
+    other = copy.deepcopy(meta)
+    other["galaxy"]["components"][2]["params"]["a_disk"] = 2.75
+    other["launch"]["v_min"] = 800.0
+    other["selection"]["v_min"] = 275.0
+    other["selection"]["r_max"] = 60.0
+    w = posterior_warnings(x, emu.parameter_names, pri, catalog_meta=other, emulator_meta=emu.metadata)
+    assert len(w) == 3
+    assert "another Galaxy" in w[0] and "a_disk = 2.75" in w[0]
+    assert "another launch model" in w[1] and "v_min = 800.0" in w[1]
+    assert "another velocity selection" in w[2] and "v_min = 275.0" in w[2]

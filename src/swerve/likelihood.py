@@ -64,7 +64,6 @@ from .likelihood_kernels import _cell_gaussians_tri, _half_quad_minus_logdet, _r
 from .summaries import N_STAT, SummarySpec, stats_to_gaussian, stats_to_vr_density
 
 
-
 # ------------------------------------------------------------------ θ-independent star terms
 @dataclass
 class StarTerms:
@@ -83,6 +82,10 @@ class StarTerms:
         Normalised log weights of the samples inside the cells (-inf outside).
     excluded : list of dict
         Stars left out, each with ``id``, ``row`` and ``reason``.
+    prior_membership : array (n,) or None
+        Each star's own prior probability of being a hypervelocity star, for a fit with a
+        background population (:mod:`swerve.background`); NaN (or None for all) where the star
+        takes the fit's fraction ``f_hvs``.
     """
 
     ids: np.ndarray
@@ -91,12 +94,13 @@ class StarTerms:
     cov: np.ndarray
     log_w: np.ndarray
     excluded: list = field(default_factory=list)
+    prior_membership: np.ndarray | None = None
 
     @property
     def n(self) -> int:
         return int(self.ids.shape[0])
 
-    def concat(self, other: "StarTerms") -> "StarTerms":
+    def concat(self, other: StarTerms) -> StarTerms:
         """These stars and ``other``'s (same k): a refit after adding stars reuses both."""
         if other.cell.shape[1] != self.cell.shape[1]:
             raise ValueError(f"stars: expected {self.cell.shape[1]} samples per star, got {other.cell.shape[1]}")
@@ -110,12 +114,18 @@ class StarTerms:
             np.concatenate([self.cov, other.cov]),
             np.concatenate([self.log_w, other.log_w]),
             self.excluded + other.excluded,
+            None if self.prior_membership is None and other.prior_membership is None else
+            np.concatenate([self._prior_or_nan(), other._prior_or_nan()]),
         )
 
-    def subset(self, keep) -> "StarTerms":
+    def _prior_or_nan(self) -> np.ndarray:
+        return np.full(self.n, np.nan) if self.prior_membership is None else np.asarray(self.prior_membership, float)
+
+    def subset(self, keep) -> StarTerms:
         keep = np.asarray(keep)
         return StarTerms(self.ids[keep], self.cell[keep], self.mean[keep], self.cov[keep], self.log_w[keep],
-                         list(self.excluded))
+                         list(self.excluded),
+                         None if self.prior_membership is None else np.asarray(self.prior_membership)[keep])
 
 
 def _folding_basis(pos):
@@ -553,12 +563,27 @@ class Likelihood:
         sets the resolution of the model and changes nothing for stars with realistic errors
         (several km/s; the calibration in ``benchmarks/RESULTS.md`` is the same with and
         without it). 0 disables it.
+    background : {"none", "halo"}
+        ``"halo"``: a mixture; each star is a hypervelocity star with probability ``f_hvs`` (one
+        more parameter, appended to the emulator's, bounds [0, 1]; or the star's own
+        ``stars.prior_membership``) or a halo star, whose density is the halo's velocity
+        ellipsoid at the star's position, marginalised over the same distance samples and
+        velocity errors (:mod:`swerve.background`; computed once, θ-independent). Per star
+        ``log(π p_hvs(θ) + (1 - π) p_halo)``; in the catalog-level emulator term each star's
+        gradient and Fisher information are weighted by its membership (the Fisher information of
+        a mixture is approximated by the membership times the star's own). ``"none"``: every star
+        is a hypervelocity star.
+    halo_sigma : sequence of 3 floats
+        The halo's velocity dispersions (σ_r, σ_θ, σ_φ), km/s (default
+        :data:`swerve.background.HALO_SIGMA`).
     """
 
     def __init__(self, emulator, stars: StarTerms, spec: SummarySpec, include_emulator_variance: bool = True,
                  emulator_variance: str = "ensemble", variance_refresh: float = 0.25,
                  emulator_error: str = "catalog", velocity_floor: float = DEFAULT_VELOCITY_FLOOR,
-                 fisher_refresh: float = 0.02):
+                 fisher_refresh: float = 0.02, background: str = "none", halo_sigma=None):
+        from .background import BACKGROUNDS, HALO_SIGMA, MIXTURE_PARAMETER, halo_log_density
+
         if emulator_variance not in ("ensemble", "per-walker"):
             raise ValueError(f"emulator_variance: expected 'ensemble' or 'per-walker', got {emulator_variance!r}")
         if emulator_error not in EMULATOR_ERROR_MODES:
@@ -580,6 +605,30 @@ class Likelihood:
         self._cache = {}  # what -> (unit-cube point where computed, value): "sd", "mean_cov_factor"
         self._last_prediction = None  # (theta, emulated summaries) of the last cell model
         self.parameter_names = list(emulator.parameter_names)
+        self.n_theta = len(self.parameter_names)
+        self.bounds = np.asarray(emulator.bounds, dtype=float)
+        if background not in BACKGROUNDS:
+            raise ValueError(f"background: expected one of {', '.join(BACKGROUNDS)}, got {background!r}")
+        self.background = background
+        self.halo_sigma = tuple(float(x) for x in (HALO_SIGMA if halo_sigma is None else halo_sigma))
+        self.log_bg = None
+        if background == "halo":
+            if MIXTURE_PARAMETER in self.parameter_names:
+                raise ValueError(f"emulator: a parameter is named {MIXTURE_PARAMETER!r}, the mixture's fraction")
+            self.parameter_names.append(MIXTURE_PARAMETER)
+            self.bounds = np.vstack([self.bounds, [[0.0, 1.0]]])
+            # finite: the kernels are compiled with fastmath (no infinities)
+            self.log_bg = np.maximum(halo_log_density(stars.mean, stars.cov, stars.log_w, self.halo_sigma), -1e4)
+        pm = stars.prior_membership
+        self._prior = None
+        if pm is not None and np.any(np.isfinite(pm)):
+            pm = np.asarray(pm, dtype=float)
+            if background == "none":
+                raise ValueError("likelihood: the stars carry prior memberships, but no background population "
+                                 "is modelled (background = 'none')")
+            if np.any(np.isfinite(pm) & ((pm < 0) | (pm > 1))):
+                raise ValueError("likelihood: prior memberships must lie in [0, 1]")
+            self._prior = pm
         self._packed = _pack(stars, spec.vr_edges)
         nc = spec.n_cells
         self._mean_idx = (np.arange(nc)[:, None] * N_STAT + np.arange(3)[None, :]).ravel()
@@ -598,6 +647,51 @@ class Likelihood:
                 np.add.at(counts, (cell_s[ok], pk.vstart[ok] + q), (w_s * pk.vbeta[:, q] / tot)[ok])
             self._hist_counts = counts
             self._hist_idx = spec.n_gauss + np.arange(nc * nb)
+
+    # ------------------------------------------------------------------------------ mixture
+    def _split(self, theta):
+        """(emulator parameters (W, d), hypervelocity fraction f (W,) or None) of ``theta``."""
+        th = np.atleast_2d(np.asarray(theta, dtype=float))
+        want = len(self.parameter_names)
+        if th.shape[1] != want:
+            raise ValueError(f"likelihood: expected {want} parameters ({', '.join(self.parameter_names)}), "
+                             f"got {th.shape[1]}")
+        if self.background == "none":
+            return th, None
+        return th[:, :self.n_theta], th[:, self.n_theta]
+
+    def _pi(self, f) -> np.ndarray:
+        """Each star's prior probability of being a hypervelocity star, (W, n_star)."""
+        pi = np.broadcast_to(np.clip(f, 0.0, 1.0)[:, None], (len(f), self.stars.n))
+        if self._prior is not None:
+            pi = np.where(np.isfinite(self._prior)[None, :], self._prior[None, :], pi)
+        return pi
+
+    def _mix_off(self, f):
+        """log background density plus log prior odds of background, (W, n_star), or None."""
+        if f is None:
+            return None
+        pi = self._pi(f)
+        with np.errstate(divide="ignore"):
+            return np.log1p(-pi) - np.log(pi) + self.log_bg[None, :]
+
+    def _mix(self, log_hvs, f):
+        if f is None:
+            return log_hvs
+        from .background import mixture_loglike
+
+        return mixture_loglike(log_hvs, self.log_bg, self._pi(f))
+
+    def membership(self, theta) -> np.ndarray:
+        """Probability that each star is a hypervelocity star given its velocity and ``theta``
+        (with ``f_hvs`` last), (W, n_star); ones without a background population."""
+        from .background import membership
+
+        th, f = self._split(theta)
+        out = self._evaluate(th, False)[0]
+        if f is None:
+            return np.ones_like(out)
+        return membership(out, self.log_bg, self._pi(f))
 
     # ----------------------------------------------------------------- emulator's uncertainty
     def _cached(self, theta, what, compute):
@@ -658,7 +752,7 @@ class Likelihood:
         B[:, np.arange(n), np.arange(n)] += 1.0
         return B
 
-    def _catalog_factor(self, theta):
+    def _catalog_factor(self, theta, f=None):
         """``(Q, log det B)`` with ``B = I + Lfᵀ P Lf`` and ``Q = Lf C⁻ᵀ`` (``C`` the Cholesky
         factor of ``B``), both at the walkers' mean (``E = Lf Lfᵀ`` from
         :meth:`_mean_cov_factor`'s cache, ``P`` from the kernel at the mean, refreshed after
@@ -668,13 +762,17 @@ class Likelihood:
 
         Lf_cached = self._mean_cov_factor(theta)  # the cache's own array: its identity says E is unchanged
 
+        f_c = None if f is None else np.array([np.mean(f)])
+
         def factor(centre):
-            _, _, f0 = self._evaluate(centre, True)
+            _, _, f0 = self._evaluate(centre, True, f=f_c)
             C = np.linalg.cholesky(self._catalog_matrix(f0, Lf_cached)[0])
             return solve_triangular(C, Lf_cached[0].T, lower=True).T, 2.0 * np.sum(np.log(np.diag(C)))
 
         centre = theta.mean(axis=0, keepdims=True)
         u = (centre[0] - self._lo) / self._span
+        if f_c is not None:  # the memberships move the Fisher information too
+            u = np.append(u, f_c)
         hit = self._cache.get("catalog_factor")
         if hit is None or hit[1] is not Lf_cached or np.max(np.abs(u - hit[0])) > self.fisher_refresh:
             hit = self._cache["catalog_factor"] = (u, Lf_cached, *factor(centre))  # also when E was refreshed
@@ -694,7 +792,7 @@ class Likelihood:
 
     def _cell_model(self, theta, fold: bool | None = None):
         """(cell means, cell covariances, v_r densities or None) from one emulator prediction."""
-        theta = np.atleast_2d(np.asarray(theta, dtype=float))
+        theta = np.atleast_2d(np.asarray(theta, dtype=float))[:, :self.n_theta]  # f_hvs, if given, aside
         fold = self.emulator_error == "per-star" if fold is None else fold
         sd = None
         if fold and (self.emulator_variance == "per-walker" or len(theta) == 1):
@@ -725,23 +823,27 @@ class Likelihood:
                 f"emulator: predicts {y.shape[-1]} outputs, the summary definition has {self.spec.n_outputs}")
         return y
 
-    def _evaluate(self, theta, want_grad: bool, want_fisher: bool = True):
+    def _evaluate(self, theta, want_grad: bool, want_fisher: bool = True, f=None):
+        """Per-star hypervelocity-star logs, gradient and Fisher sums at emulator parameters
+        ``theta`` (W, d); with the mixture's ``f`` (W,), those sums weighted by membership."""
+        mix_off = self._mix_off(f) if want_grad else None
         if self.emulator_error != "per-star" and not self.spec.n_vbins:  # the hot path: one compiled pass
             theta = np.atleast_2d(np.asarray(theta, dtype=float))
             y = self._record(theta, self.emulator.predict(theta))
             mu, tri = _cell_gaussians_tri(np.ascontiguousarray(y), self.spec.n_cells, self.velocity_floor**2)
-            return _run_kernels(self._packed, mu, tri, want_grad, None, want_fisher)
+            return _run_kernels(self._packed, mu, tri, want_grad, None, want_fisher, mix_off)
         mu, sig, dens = self._cell_model(theta)
         tri = np.ascontiguousarray(np.stack(
             [sig[..., 0, 0], sig[..., 1, 0], sig[..., 1, 1], sig[..., 2, 0], sig[..., 2, 1], sig[..., 2, 2]], -1))
-        return _run_kernels(self._packed, mu, tri, want_grad, dens, want_fisher)
+        return _run_kernels(self._packed, mu, tri, want_grad, dens, want_fisher, mix_off)
 
     def per_star(self, theta) -> np.ndarray:
         """Log-likelihood of every star, (W, n_stars) (without the catalog-level emulator
-        correction, which belongs to no single star)."""
-        return self._evaluate(np.atleast_2d(np.asarray(theta, dtype=float)), False)[0]
+        correction, which belongs to no single star); with a background, of the mixture."""
+        th, f = self._split(theta)
+        return self._mix(self._evaluate(th, False)[0], f)
 
-    def _histogram_correction(self, theta, grad) -> np.ndarray:
+    def _histogram_correction(self, theta, grad, f_mix=None) -> np.ndarray:
         """The catalog-level marginalisation of the emulator's error in the cell means *and* the
         v_r histograms (emulators with ``vr_edges``), per walker.
 
@@ -755,11 +857,16 @@ class Likelihood:
         walkers' mean and kept with the emulator's covariance ``E`` until that is refreshed (a
         285-dimensional solve per walker would cost more than the rest of the call), so that
         only the gradient changes from walker to walker; ``emulator_variance="per-walker"``
-        evaluates both at every walker instead."""
+        evaluates both at every walker instead. With a background population (``f_mix``, the
+        walkers' ``f_hvs``), the means' gradient and Fisher information are membership-weighted
+        (:meth:`_evaluate`), but the histogram's counts ``n_b`` are every used star's: halo stars
+        are counted as hypervelocity stars in this term (a limitation of the mixture with v_r
+        histogram emulators)."""
         from .summaries import VR_FRACTION_FLOOR, VR_FRACTION_MIN
 
         spec = self.spec
         nc, nb = spec.n_cells, spec.n_vbins
+        f_centre = None if f_mix is None else np.array([np.mean(f_mix)])  # the mixture's fraction, if any
 
         def hist_terms(th):
             last = self._last_prediction
@@ -774,7 +881,7 @@ class Likelihood:
 
         n_c = self._hist_counts.sum(axis=1)
 
-        def factor(centre):
+        def factor(centre, fc=f_centre):
             idx = np.concatenate([self._mean_idx, self._hist_idx])
             _, cov = self.emulator.predict(centre, return_cov=True)
             E = np.asarray(cov, dtype=float)[0][np.ix_(idx, idx)]
@@ -782,7 +889,7 @@ class Likelihood:
             E[np.diag_indices_from(E)] += 1e-12 * np.max(np.diag(E)) + 1e-300
             Lf = np.linalg.cholesky(E)
             # P at the centre: the means' from the kernel, the histogram's multinomial
-            _, _, f0 = self._evaluate(centre, True)
+            _, _, f0 = self._evaluate(centre, True, f=fc)
             n = len(idx)
             P = np.zeros((n, n))
             for c in range(nc):
@@ -810,7 +917,7 @@ class Likelihood:
         if self.emulator_variance == "per-walker" and len(theta) > 1:  # exact: E and P at every walker
             out = np.empty(len(theta))
             for i in range(len(theta)):
-                Q, logdet = factor(theta[i:i + 1])
+                Q, logdet = factor(theta[i:i + 1], None if f_mix is None else f_mix[i:i + 1])
                 y = g[i] @ Q
                 out[i] = 0.5 * y @ y - 0.5 * logdet
             return out
@@ -821,19 +928,20 @@ class Likelihood:
     def __call__(self, theta) -> np.ndarray:
         """Total log-likelihood, (W,) for theta of shape (W, d) (or a float for (d,))."""
         theta = np.asarray(theta, dtype=float)
-        th2 = np.atleast_2d(theta)
+        th2, f = self._split(theta)
         if self.emulator_error == "catalog":
             exact = self.emulator_variance == "per-walker" or len(th2) == 1
             # the histogram's correction takes P at the walkers' mean (or per walker) itself
-            out, grad, fisher = self._evaluate(th2, True, want_fisher=exact and not self.spec.n_vbins)
+            out, grad, fisher = self._evaluate(th2, True, want_fisher=exact and not self.spec.n_vbins, f=f)
+            out = self._mix(out, f)
             if self.spec.n_vbins:
-                tot = out.sum(axis=1) + self._histogram_correction(th2, grad)
+                tot = out.sum(axis=1) + self._histogram_correction(th2, grad, f)
             elif exact:
                 tot = out.sum(axis=1) + self.emulator_correction(grad, fisher, self._mean_cov_factor(th2))
             else:
-                Q, logdet = self._catalog_factor(th2)
+                Q, logdet = self._catalog_factor(th2, f)
                 y = grad.reshape(len(th2), -1) @ Q
                 tot = out.sum(axis=1) + 0.5 * np.einsum("wi,wi->w", y, y) - 0.5 * logdet
         else:
-            tot = self._evaluate(th2, False)[0].sum(axis=1)
+            tot = self._mix(self._evaluate(th2, False)[0], f).sum(axis=1)
         return tot if theta.ndim == 2 else float(tot[0])

@@ -96,7 +96,7 @@ def _term_cond(u0, u1, u2, b1, b2, s11, s21, s22, x00, x10, x11, x20, x21, x22, 
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
                     vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mu, sig, dens, out,
-                    want_grad, want_fisher, grad, fisher):
+                    want_grad, want_fisher, grad, fisher, mix, mix_off):
     """out[w, i] = log sum_k w_ik N(m_ik; mu[w, c], sig[w, c] + C_ik), summed over each star's
     (star, cell) segments; sig holds the 6 lower-triangle entries (00, 10, 11, 20, 21, 22).
     One walker at a time, vectorised over a segment's samples, parallel over (walker, chunk of
@@ -118,7 +118,13 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
     the sample's v_r error), times the Gaussian of its tangential components conditional on v_r
     (:func:`_term_cond`; ``δ`` from ``vgamma``, :func:`_vr_window`; ``kap1``, ``kap2`` the
     regressions of the sample's tangential errors on its v_r error); ``lognorm`` is the
-    Gaussian constant (1.5 or 1 log 2π)."""
+    Gaussian constant (1.5 or 1 log 2π).
+
+    With ``mix`` (a mixture with a background population, :mod:`swerve.background`), each
+    star's contribution to ``grad`` and ``fisher`` is weighted by its membership
+    ``1 / (1 + exp(mix_off[w, i] - out[w, i]))`` (``mix_off``: the log of the star's background
+    density plus its log prior odds of being background, finite, (W, n_star)); ``out`` stays
+    the hypervelocity-star term alone."""
     W = mu.shape[0]
     nseg = seg_cell.shape[0]
     nch = chunk.shape[0] - 1
@@ -184,13 +190,22 @@ def _loglike_kernel(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 gs[wi, s, 7] = h21
                 gs[wi, s, 8] = h22
     for wi in nb.prange(W):
-        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher)
+        _finish(wi, acc[wi], gs[wi], seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher, mix,
+                mix_off)
+
+
+@nb.njit(fastmath=True, inline="always", cache=True)
+def _membership(x):
+    """``1 / (1 + exp(x))``: a star's membership from its log odds ``x`` of being background
+    (clamped: the kernels are compiled with fastmath, which assumes no infinities)."""
+    return 1.0 / (1.0 + math.exp(min(max(x, -700.0), 700.0)))
 
 
 @nb.njit(fastmath=True, cache=True)
-def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher):
+def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher, mix, mix_off):
     """One walker's per-star logs and its responsibility-weighted gradient and Fisher sums,
-    from the per-star sums ``acc`` (n_star,) and per-segment sums ``gs`` (n_seg, 9)."""
+    from the per-star sums ``acc`` (n_star,) and per-segment sums ``gs`` (n_seg, 9); with
+    ``mix``, each star's weighted by its membership (see :func:`_loglike_kernel`)."""
     for i in range(acc.shape[0]):
         if acc[i] > 1e-300:
             out[wi, i] = math.log(acc[i]) - lognorm
@@ -198,14 +213,18 @@ def _finish(wi, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, ou
             out[wi, i] = np.nan  # recomputed in log space
     if want_grad:
         for s in range(seg_cell.shape[0]):
-            a = acc[seg_star[s]]
+            i = seg_star[s]
+            a = acc[i]
             if a > 1e-300:
                 c = seg_cell[s]
+                ia = 1.0 / a
+                if mix:
+                    ia *= _membership(mix_off[wi, i] - out[wi, i])
                 for m in range(3):
-                    grad[wi, c, m] += gs[s, m] / a
+                    grad[wi, c, m] += gs[s, m] * ia
                 if want_fisher:
                     for m in range(6):
-                        fisher[wi, c, m] += gs[s, 3 + m] / a
+                        fisher[wi, c, m] += gs[s, 3 + m] * ia
 
 
 #: walkers evaluated together by :func:`_loglike_blocks` (a compile-time constant: the inner
@@ -218,7 +237,7 @@ _PAD_FROM = 5
 @nb.njit(parallel=True, fastmath=True, cache=True)
 def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c00, c10, c11, c20, c21, c22, w,
                     vstart, vcount, vbeta, vgamma, vgamma2, kap1, kap2, cond, lognorm, mub, sigb, densb, out,
-                    want_grad, want_fisher, grad, fisher):
+                    want_grad, want_fisher, grad, fisher, mix, mix_off):
     """:func:`_loglike_kernel` for blocks of :data:`_WALKER_BLOCK` walkers, vectorised over the
     walkers of a block (every sample meets 16 walkers in the vector registers; a segment holds
     only ~40 samples, too few to fill them), parallel over (block, chunk of stars) pairs.
@@ -322,11 +341,12 @@ def _loglike_blocks(seg_cell, seg_start, seg_star, chunk, n_star, m0, m1, m2, c0
                 gs[bi, s] = G
     for bi in nb.prange(nbk):
         _finish_block(bi * B, acc[bi], gs[bi], seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad,
-                      fisher)
+                      fisher, mix, mix_off)
 
 
 @nb.njit(fastmath=True, cache=True)
-def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher):
+def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, want_fisher, lognorm, out, grad, fisher, mix,
+                  mix_off):
     """:func:`_finish` for the :data:`_WALKER_BLOCK` walkers from ``w0`` at once, reading the
     block's sums ``acc`` (n_star, B) and ``gs`` (n_seg, 9, B) in their memory order."""
     B = acc.shape[1]
@@ -340,9 +360,14 @@ def _finish_block(w0, acc, gs, seg_cell, seg_star, want_grad, want_fisher, logno
         ia = np.empty(B)
         for s in range(seg_cell.shape[0]):
             c = seg_cell[s]
+            i = seg_star[s]
             for k in range(B):
-                a = acc[seg_star[s], k]
+                a = acc[i, k]
                 ia[k] = 1.0 / a if a > 1e-300 else 0.0
+            if mix:
+                for k in range(B):
+                    if ia[k] > 0.0:
+                        ia[k] *= _membership(mix_off[w0 + k, i] - out[w0 + k, i])
             for m in range(9 if want_fisher else 3):
                 for k in range(B):
                     gb[c, m, k] += gs[s, m, k] * ia[k]
@@ -386,7 +411,7 @@ def _cell_gaussians_tri(y, n_cells, floor2):
     return mu, tri
 
 
-def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | None = None):
+def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | None = None, mix_off=None):
     """Per-star log-likelihoods (W, n_star), gradient (W, n_cells, 3) and Fisher information
     (W, n_cells, 6) of the packed star terms ``p`` (``swerve.likelihood._Packed``) for the
     walkers' cell Gaussians ``mu`` (W, n_cells, 3) and ``tri``
@@ -394,7 +419,12 @@ def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | Non
     ``p.cond``, else ignored): whole blocks of walkers by :func:`_loglike_blocks`, the rest by
     :func:`_loglike_kernel`; underflowed stars redone in log space. A last partial block of
     at least :data:`_PAD_FROM` walkers is padded to a whole one (a walker costs 3-4× less in a
-    block, and emcee passes half an ensemble less the walkers proposed outside the prior)."""
+    block, and emcee passes half an ensemble less the walkers proposed outside the prior).
+
+    ``mix_off`` (W, n_star), optional: with a background population, each star's log background
+    density plus its log prior odds of being background (:meth:`swerve.likelihood.Likelihood`);
+    the gradient and Fisher sums are then weighted by each star's membership. The per-star
+    logs returned are the hypervelocity-star term alone either way."""
     W, nc = mu.shape[0], mu.shape[1]
     if not p.cond:
         dens = np.ones((W, nc, 1))
@@ -405,10 +435,19 @@ def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | Non
         mu = np.concatenate([mu, np.repeat(mu[-1:], pad, axis=0)])
         tri = np.concatenate([tri, np.repeat(tri[-1:], pad, axis=0)])
         dens = np.concatenate([dens, np.repeat(dens[-1:], pad, axis=0)])
-        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens, want_fisher))
+        if mix_off is not None:
+            mix_off = np.concatenate([mix_off, np.repeat(mix_off[-1:], pad, axis=0)])
+        return tuple(a[:W] for a in _run_kernels(p, mu, tri, want_grad, dens, want_fisher, mix_off))
     want_fisher = want_grad if want_fisher is None else bool(want_fisher and want_grad)
     lognorm = (1.5 - 0.5 * p.cond) * _LOG_2PI
     vr = (p.vstart, p.vcount, p.vbeta, p.vgamma, p.vgamma2, p.kap1, p.kap2, float(p.cond), lognorm)
+    mix = mix_off is not None and want_grad
+    if mix:
+        mix_off = np.ascontiguousarray(np.clip(mix_off, -700.0, 700.0), dtype=float)
+        if mix_off.shape != (W, p.n_star):
+            raise ValueError(f"likelihood: mix_off: expected shape {(W, p.n_star)}, got {mix_off.shape}")
+    else:
+        mix_off = np.zeros((W, 1))
     out = np.empty((W, p.n_star))
     grad = np.zeros((W, nc, 3))
     fisher = np.zeros((W, nc, 6))
@@ -419,11 +458,11 @@ def _run_kernels(p, mu, tri, want_grad: bool, dens=None, want_fisher: bool | Non
         sigb = np.ascontiguousarray(tri[:n].reshape(n // B, B, nc, 6).transpose(0, 2, 3, 1))
         densb = np.ascontiguousarray(dens[:n].reshape(n // B, B, nc, -1).transpose(0, 2, 3, 1))
         _loglike_blocks(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mub, sigb, densb,
-                        out[:n], want_grad, want_fisher, grad[:n], fisher[:n])
+                        out[:n], want_grad, want_fisher, grad[:n], fisher[:n], mix, mix_off[:n])
     if n < W:
         _loglike_kernel(p.seg_cell, p.seg_start, p.seg_star, p.chunk, p.n_star, *p.cols, *vr, mu[n:], tri[n:],
                         np.ascontiguousarray(dens[n:]), out[n:], want_grad, want_fisher, grad[n:],
-                        fisher[n:])
+                        fisher[n:], mix, np.ascontiguousarray(mix_off[n:]))
     # underflow: a star far in the tail of this walker's model (a NaN makes the sum NaN: one cheap
     # pass over the array instead of a mask and a search on every call)
     for wi, i in (np.argwhere(np.isnan(out)) if np.isnan(out.sum()) else ()):
