@@ -112,3 +112,28 @@ def test_cli_mock_config_and_errors(tmp_path, capsys):
     for opt in ("--n", "--seed", "--out", "--param", "--config", "--halo-flattening", "--launch",
                 "--bank-size", "--error-parallax", "--error-pm", "--error-vlos", "--cut"):
         assert opt in text
+
+
+def test_mock_defaults_are_the_shipped_emulators_model():
+    """A mock made with `swerve mock`'s defaults lies inside the shipped emulator's model: its
+    halo flattening, launch family and fixed speeds, and selection are those recorded in the
+    emulator's configuration, and the default slope is the middle of its inferred range."""
+    import json
+
+    from swerve.commands.mock import EMULATOR_MODEL_DEFAULTS, _schema
+    from swerve.config import validate
+    from swerve.resources import default_emulator
+
+    config = json.loads((default_emulator() / "emulator.json").read_text())["metadata"]["config"]
+    d = EMULATOR_MODEL_DEFAULTS
+    assert d["halo_flattening"] == config["galaxy"]["halo_flattening"]
+    assert config["launch"]["model"] == "power-law"
+    for name, value in config["launch"]["fixed"].items():
+        assert d["launch_params"][name] == value
+    lo, hi = config["launch"]["infer"]["slope"]
+    assert d["launch_params"]["slope"] == 0.5 * (lo + hi)
+    for name in ("r_min", "r_max", "outgoing"):
+        assert d[name] == config["selection"][name]
+    cfg = validate({}, _schema(), source="<defaults>")
+    assert cfg["galaxy"]["halo_flattening"] == d["halo_flattening"]
+    assert cfg["selection"]["r_max"] == d["r_max"] and cfg["selection"]["r_min"] == d["r_min"]

@@ -15,6 +15,20 @@ from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag, check_op
 log = logging.getLogger("swerve")
 
 
+#: The shipped default emulator's model (training/default.toml), so that a mock made with the
+#: defaults lies inside the emulator's model and `swerve fit` on it should recover the truth:
+#: a density-flattened halo, p(v) ∝ v^-0.5 on 700-3000 km/s (the middle of the emulator's slope
+#: range), stars at 10-250 kpc moving outward. tests/test_mock.py checks these against the shipped
+#: emulator's recorded configuration.
+EMULATOR_MODEL_DEFAULTS = {
+    "halo_flattening": "density",
+    "launch_params": {"v_min": 700.0, "v_max": 3000.0, "slope": -0.5},
+    "r_min": 10.0,
+    "r_max": 250.0,
+    "outgoing": True,
+}
+
+
 def _schema():
     from ..config import Key, Schema, Section
     from ..selection import _FIELDS_DOC, Selection
@@ -25,7 +39,8 @@ def _schema():
             sel_keys.append(Key(f.name, "bool", bool(f.default), doc=_FIELDS_DOC[f.name]))
         else:
             nonneg = f.name in ("r_min", "r_max", "d_min", "d_max", "v_min", "abs_b_min")
-            sel_keys.append(Key(f.name, "float", f.default, min=0.0 if nonneg else None, doc=_FIELDS_DOC[f.name]))
+            default = EMULATOR_MODEL_DEFAULTS.get(f.name, f.default)
+            sel_keys.append(Key(f.name, "float", default, min=0.0 if nonneg else None, doc=_FIELDS_DOC[f.name]))
     law = "A, B, P: sigma(d) = A + B (d/10 kpc)**P at the true heliocentric distance d"
     return Schema("mock", (
         Section("", (
@@ -37,15 +52,15 @@ def _schema():
         )),
         Section("galaxy", (
             Key("model", "str", None, doc="named Galaxy model (default: the package default)"),
-            Key("halo_flattening", "str", None, choices=("potential", "density"),
-                doc="flatten the halo in the potential or in the density"),
+            Key("halo_flattening", "str", EMULATOR_MODEL_DEFAULTS["halo_flattening"], choices=("potential", "density"),
+                doc="flatten the halo in the potential or in the density (default: the shipped emulator's)"),
             Key("params", "table", None, doc="Galaxy parameters, e.g. {q_z = 0.85, q_y = 1.1}"),
         ), doc="the Galaxy"),
         Section("launch", (
             Key("model", "str", "power-law", choices=("power-law", "hills"),
                 doc="launch model: bounded power law in speed, or the Hills mechanism"),
             Key("imf", "str", "kroupa", choices=("kroupa", "salpeter"), doc="IMF of the Hills model"),
-            Key("params", "table", None, doc="launch parameters, e.g. {v_min = 600, v_max = 2200, slope = -0.5}"),
+            Key("params", "table", None, doc="launch parameters (power law, default the shipped emulator's: {v_min = 700, v_max = 3000, slope = -0.5}), e.g. {v_min = 600, v_max = 2200, slope = -1}"),
             Key("flight_time_max", "float", 300.0, min=0.0, exclusive_min=True,
                 doc="longest flight time, Myr (flight times uniform up to it)"),
             Key("mass_range", "list[float]", None, length=2, min=0.0,
@@ -105,7 +120,7 @@ def add_parser(sub):
                    help="Hills only: keep ejected stars with mass in [LO, HI] Msun")
     p.add_argument("--cut", action="append", metavar="NAME=VALUE", default=[],
                    help="a selection cut, e.g. r_min=10, outgoing=true, unbound=true, d_max=60 (repeatable; "
-                        "default r_min=10 and outgoing)")
+                        "default: the shipped emulator's selection, r_min=10, r_max=250 and outgoing)")
     p.add_argument("--error-parallax", default=None, metavar="A[,B[,P]]|none", help="parallax error law, mas (default 0.02)")
     p.add_argument("--error-distance-frac", default=None, metavar="A[,B[,P]]|none",
                    help="fractional error law of an independent (spectrophotometric) distance (default 0.1); "
@@ -219,6 +234,8 @@ def _build(cfg, params):
     launch_names = {p.name for p in launch_cls.PARAMETERS}
     g_params = {k: float(v) for k, v in (gal["params"] or {}).items()}
     l_params = {k: float(v) for k, v in (lau["params"] or {}).items()}
+    if lau["model"] == "power-law":  # the shipped emulator's launch model unless told otherwise
+        l_params = {**EMULATOR_MODEL_DEFAULTS["launch_params"], **l_params}
     for k, v in params.items():
         if k in base.params:
             g_params[k] = v
