@@ -54,6 +54,27 @@ def test_fit_writes_the_run_folder(tmp_path, smoke_run, mock_catalog):
     assert "q_z" in outcome.terminal and "68% interval" in outcome.terminal
 
 
+def test_laplace_is_agrees_with_emcee(tmp_path, smoke_run, mock_catalog):
+    """[sampler] method = "laplace-is" (swerve.laplace) against the emcee chain on the same catalog:
+    medians within 0.3 posterior sd and 68% widths within 30% (Monte Carlo error of a short chain);
+    no chain is written, and the summary says which method made the samples."""
+    _, emu = smoke_run
+    cfg_e = load_fit_config(None, FAST)
+    cfg_l = load_fit_config(None, {**FAST, "sampler": {**FAST["sampler"], "method": "laplace-is"}})
+    run_fit(mock_catalog, emu, tmp_path / "e", cfg_e)
+    outcome = run_fit(mock_catalog, emu, tmp_path / "l", cfg_l)
+    se = json.loads((tmp_path / "e" / "summary.json").read_text())
+    sl = json.loads((tmp_path / "l" / "summary.json").read_text())
+    assert sl["sampler"]["converged"]  # the weights were judged reliable on this catalog
+    assert sl["sampler"]["method"] == "laplace-is" and not (tmp_path / "l" / "chain.h5").exists()
+    assert "Laplace" in outcome.terminal
+    for n, pe in se["parameters"].items():
+        pl = sl["parameters"][n]
+        sd = 0.5 * (pe["ci68"][1] - pe["ci68"][0])
+        assert abs(pl["median"] - pe["median"]) < 0.3 * sd, n
+        assert abs((pl["ci68"][1] - pl["ci68"][0]) / (2 * sd) - 1.0) < 0.3, n
+
+
 def _fit_all_but_the_last_star(tmp_path, emu, mock_catalog, out, cfg):
     """Fit the mock less its last star into ``out`` (the first fit of a refit test)."""
     first = tmp_path / "first.ecsv"

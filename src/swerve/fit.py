@@ -79,6 +79,11 @@ FIT_SCHEMA = Schema("fit", (
         Key("n_tau", "float", 50.0, min=1.0, doc="converged when the chain is longer than n_tau x tau ..."),
         Key("tau_rtol", "float", 0.05, min=0.0, doc="... and tau changed by less than this fraction"),
         Key("seed", "int", 1, min=0, doc="seed of the sampler"),
+        Key("method", "str", "emcee", choices=("emcee", "laplace-is", "auto"),
+            doc="emcee: the ensemble sampler; laplace-is: the Laplace approximation at the maximum checked by "
+                "importance sampling (swerve.laplace: seconds for large catalogs), emcee started from its draws "
+                "when the weights are unreliable; auto: laplace-is from laplace_min_stars usable stars"),
+        Key("laplace_min_stars", "int", 1000, min=1, doc="catalog size from which method = 'auto' tries laplace-is"),
         Key("refit", "str", "reweight", choices=("reweight", "sample"),
             doc="after stars are added to a converged fit in the same folder: importance-reweight its chain by the "
                 "new stars (seconds; falls back to sampling when the weights are unreliable) or always sample anew"),
@@ -414,6 +419,9 @@ def _run_fit(catalog_path, emulator_path, out_dir, cfg, *, progress=False, log=p
                     notes.append("the data or configuration changed since the chain in this folder: a new chain "
                                  "was started from the previous one's final walkers")
                 chain.unlink()
+        if res is None and (s["method"] == "laplace-is"
+                            or (s["method"] == "auto" and terms.n >= s["laplace_min_stars"])):
+            res, previous_start = _laplace(post, s, names, adjustment, notes, progress, previous_start)
         if res is None:
             adj_state = None if adjustment is None else {k: adjustment[k] for k in ("C", "kappa", "widened")}
             if adj_state is not None:
@@ -439,7 +447,8 @@ def _run_fit(catalog_path, emulator_path, out_dir, cfg, *, progress=False, log=p
         "sampler": {"n_walkers": res.n_walkers, "n_steps": res.n_steps, "burn_in": res.burn_in, "thin": res.thin,
                     "acceptance": res.acceptance, "converged": res.converged, "resumed_from": res.resumed_from,
                     "n_samples": int(len(res.samples)),
-                    "method": "reweighted" if res.weights is not None else "sampled",
+                    "method": ("laplace-is" if (res.importance or {}).get("method") == "laplace-is"
+                               else "reweighted" if res.weights is not None else "sampled"),
                     "importance": res.importance},
         "stars": {"used": terms.n, "excluded": terms.excluded, "terms_reused": reused},
         "likelihood": {"adjustment": adjustment},
@@ -485,6 +494,26 @@ def _adjusted(plain, like, bounds, s, names, notes, recorded=None):
     return post, {"theta_hat": dict(zip(names, np.asarray(theta_hat, dtype=float).tolist())),
                   "C": np.asarray(C, dtype=float).tolist(), "kappa": kappa, "widened": widened,
                   "reused": recorded is not None}
+
+
+def _laplace(post, s, names, adjustment, notes, progress, previous_start):
+    """The posterior by swerve.laplace; (result, None) when its weights are reliable, else
+    (None, starting walkers for emcee drawn from it)."""
+    from .laplace import laplace_is
+
+    x0 = None
+    if adjustment is not None:
+        x0 = np.array([adjustment["theta_hat"][n] for n in post.free_names])
+    lap = laplace_is(post, seed=s["seed"], x_map=x0, progress=progress)
+    if lap.reliable:
+        notes.append(f"posterior: Laplace approximation corrected by importance sampling (ESS {lap.ess:.0f} of "
+                     f"{len(lap.samples)}, Pareto k {lap.pareto_k:.2f}); no chain")
+        return lap.to_sampler_result(), None
+    nw = s["nwalkers"] or max(32, 4 * post.ndim)
+    nw += nw % 2
+    notes.append(f"posterior: the Laplace approximation was not reliable (Pareto k {lap.pareto_k:.2f}, "
+                 f"ESS {lap.ess:.0f}); emcee was started from its draws")
+    return None, lap.start_walkers(nw, np.random.default_rng(s["seed"]))
 
 
 def _sample(sample_posterior, post, s, chain, progress, start):
@@ -773,7 +802,10 @@ def terminal_summary(summary, catalog_path, emulator_path) -> str:
              f"  chain: {s['n_walkers']} walkers x {s['n_steps']} steps, acceptance {s['acceptance']:.2f}, "
              + ("converged" if s["converged"] else "NOT converged (step cap hit)")]
     imp = s.get("importance")
-    if imp:
+    if imp and imp.get("method") == "laplace-is":
+        lines[-1] = (f"  posterior: Laplace approximation + importance sampling, {imp['rounds']} round(s): "
+                     f"effective sample size {imp['ess']:.0f} of {imp['n_samples']}, Pareto k {imp['pareto_k']:.2f}")
+    elif imp:
         lines.append(f"  refit: that chain (of {imp['chain_stars']} stars) reweighted by {imp['stars_added']} added "
                      f"star(s): effective sample size {imp['ess']:.0f} of {imp['n_samples']}, "
                      f"Pareto k {imp['pareto_k']:.2f}")

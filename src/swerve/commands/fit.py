@@ -134,5 +134,6 @@ def run(args) -> int:
         return EXIT_OK
     outcome = run_fit(args.catalog, emulator, out, cfg, progress=not args.no_progress)
     print(outcome.terminal)
-    print(f"  results in {out}/ (summary.json, summary.ecsv, stars.ecsv, corner.png, ppc.png, chain.h5)")
+    chain = ", chain.h5" if (out / "chain.h5").exists() else ""
+    print(f"  results in {out}/ (summary.json, summary.ecsv, stars.ecsv, corner.png, ppc.png{chain})")
     return EXIT_OK
