@@ -15,13 +15,6 @@ from ._common import (
 )
 
 
-def default_emulator() -> Path:
-    """The shipped default emulator (see :func:`swerve.resources.default_emulator`)."""
-    from ..resources import default_emulator as _default
-
-    return _default()
-
-
 def add_parser(sub):
     p = sub.add_parser(
         "fit",
