@@ -84,6 +84,8 @@ __all__ = [
     "integrate_arrays",
     "integrate_batch_kernel",
     "status_names",
+    "as_vectors",
+    "failure_summary",
 ]
 
 STATUS_OK = 0
@@ -813,19 +815,25 @@ class OrbitResult:
 
     def failure_summary(self) -> str:
         """One line counting the failed orbits by kind ('' when none failed)."""
-        bad = ~self.ok
-        if not np.any(bad):
-            return ""
-        parts = []
-        for code, name in status_names.items():
-            k = int(np.sum(self.status == code))
-            if code > STATUS_STOPPED and k:
-                first = int(np.flatnonzero(self.status == code)[0])
-                parts.append(f"{k} {name} (first: orbit {first})")
-        return f"{int(bad.sum())} of {self.n_orbits} orbits failed: " + "; ".join(parts)
+        return failure_summary(self.status)
 
 
-def _as_vectors(value, kind, name, n=None):
+def failure_summary(status) -> str:
+    """One line counting failed orbits by kind from their ``status`` codes ('' when none failed)."""
+    status = np.asarray(status)
+    bad = status > STATUS_STOPPED
+    if not np.any(bad):
+        return ""
+    parts = []
+    for code, name in status_names.items():
+        k = int(np.sum(status == code))
+        if code > STATUS_STOPPED and k:
+            first = int(np.flatnonzero(status == code)[0])
+            parts.append(f"{k} {name} (first: orbit {first})")
+    return f"{int(bad.sum())} of {status.shape[0]} orbits failed: " + "; ".join(parts)
+
+
+def as_vectors(value, kind, name, n=None):
     arr = units.to_internal(value, kind, name)
     arr = np.asarray(arr, dtype=float)
     if arr.ndim == 1 and arr.shape[0] == 3:
@@ -893,9 +901,9 @@ def integrate_arrays(kinds, pars, aux, pos0, vel0, t_end, t_out=None, *, r_stop=
     -------
     OrbitResult
     """
-    pos0 = _as_vectors(pos0, "length", "pos0")
+    pos0 = as_vectors(pos0, "length", "pos0")
     n = pos0.shape[0]
-    vel0 = _as_vectors(vel0, "velocity", "vel0", n)
+    vel0 = as_vectors(vel0, "velocity", "vel0", n)
     t_end_myr = _per_orbit(t_end, "time", "t_end", n)
     r_stop_arr = (np.full(n, np.inf) if r_stop is None
                   else _per_orbit(r_stop, "length", "r_stop", n, allow_inf=True))

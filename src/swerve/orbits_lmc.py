@@ -62,7 +62,8 @@ from .orbits import (
     STATUS_STOPPED,
     OrbitFailureWarning,
     OrbitIntegrationError,
-    status_names,
+    as_vectors,
+    failure_summary,
 )
 
 __all__ = [
@@ -94,18 +95,9 @@ _NI = 4
 
 
 @_inline
-def _track(table, tp, t):
-    """LMC position and velocity relative to the Galactic Centre at internal time ``t``:
-    quintic Hermite on the grid cell holding ``t`` (clamped to the grid)."""
-    n = table.shape[0]
-    h = tp[1]
-    u = (t - tp[0]) / h
-    i = int(math.floor(u))
-    if i < 0:
-        i = 0
-    if i > n - 2:
-        i = n - 2
-    th = u - i
+def _hermite_weights(th, h):
+    """Quintic Hermite weights at fraction ``th`` of an interval of length ``h``: of the value
+    (h0..h5) and of the derivative (g0..g5), for (x0, x0', x0'', x1, x1', x1'')."""
     t2 = th * th
     t3 = t2 * th
     t4 = t3 * th
@@ -122,6 +114,23 @@ def _track(table, tp, t):
     g3 = (30.0 * t2 - 60.0 * t3 + 30.0 * t4) / h
     g4 = -12.0 * t2 + 28.0 * t3 - 15.0 * t4
     g5 = 0.5 * (3.0 * t2 - 8.0 * t3 + 5.0 * t4) * h
+    return h0, h1, h2, h3, h4, h5, g0, g1, g2, g3, g4, g5
+
+
+@_inline
+def _track(table, tp, t):
+    """LMC position and velocity relative to the Galactic Centre at internal time ``t``:
+    quintic Hermite on the grid cell holding ``t`` (clamped to the grid)."""
+    n = table.shape[0]
+    h = tp[1]
+    u = (t - tp[0]) / h
+    i = int(math.floor(u))
+    if i < 0:
+        i = 0
+    if i > n - 2:
+        i = n - 2
+    th = u - i
+    h0, h1, h2, h3, h4, h5, g0, g1, g2, g3, g4, g5 = _hermite_weights(th, h)
     a = table[i]
     b = table[i + 1]
     X = h0 * a[0] + h1 * a[3] + h2 * a[6] + h3 * b[0] + h4 * b[3] + h5 * b[6]
@@ -189,22 +198,7 @@ def _potential(kinds, pars, aux, table, tp, x, y, z, t):
 @_inline
 def _hermite_state(s0, s1, acc0, acc1, h, th, out):
     """Quintic Hermite of position (out[0:3]) and velocity (out[3:6]) on a step."""
-    t2 = th * th
-    t3 = t2 * th
-    t4 = t3 * th
-    t5 = t4 * th
-    h0 = 1.0 - 10.0 * t3 + 15.0 * t4 - 6.0 * t5
-    h1 = (th - 6.0 * t3 + 8.0 * t4 - 3.0 * t5) * h
-    h2 = 0.5 * (t2 - 3.0 * t3 + 3.0 * t4 - t5) * h * h
-    h3 = 10.0 * t3 - 15.0 * t4 + 6.0 * t5
-    h4 = (-4.0 * t3 + 7.0 * t4 - 3.0 * t5) * h
-    h5 = 0.5 * (t3 - 2.0 * t4 + t5) * h * h
-    g0 = (-30.0 * t2 + 60.0 * t3 - 30.0 * t4) / h
-    g1 = 1.0 - 18.0 * t2 + 32.0 * t3 - 15.0 * t4
-    g2 = 0.5 * (2.0 * th - 9.0 * t2 + 12.0 * t3 - 5.0 * t4) * h
-    g3 = (30.0 * t2 - 60.0 * t3 + 30.0 * t4) / h
-    g4 = -12.0 * t2 + 28.0 * t3 - 15.0 * t4
-    g5 = 0.5 * (3.0 * t2 - 8.0 * t3 + 5.0 * t4) * h
+    h0, h1, h2, h3, h4, h5, g0, g1, g2, g3, g4, g5 = _hermite_weights(th, h)
     for k in range(3):
         out[k] = h0 * s0[k] + h1 * s0[3 + k] + h2 * acc0[k] + h3 * s1[k] + h4 * s1[3 + k] + h5 * acc1[k]
         out[3 + k] = (g0 * s0[k] + g1 * s0[3 + k] + g2 * acc0[k] + g3 * s1[k] + g4 * s1[3 + k]
@@ -523,31 +517,12 @@ class LMCOrbitResult:
 
     def failure_summary(self) -> str:
         """One line counting the failed orbits by kind ('' when none failed)."""
-        bad = ~self.ok
-        if not np.any(bad):
-            return ""
-        parts = []
-        for code, name in status_names.items():
-            k = int(np.sum(self.status == code))
-            if code > STATUS_STOPPED and k:
-                first = int(np.flatnonzero(self.status == code)[0])
-                parts.append(f"{k} {name} (first: orbit {first})")
-        return f"{int(bad.sum())} of {self.n_orbits} orbits failed: " + "; ".join(parts)
+        return failure_summary(self.status)
 
 
 def _vectors(value, kind, name, n=None):
-    arr = np.asarray(units.to_internal(value, kind, name), dtype=float)
-    if arr.ndim == 1 and arr.shape[0] == 3:
-        arr = arr[None, :]
-    if arr.ndim != 2 or arr.shape[1] != 3:
-        raise ValueError(f"{name}: expected an array of shape (n, 3), got shape {np.shape(arr)}")
-    if n is not None and arr.shape[0] != n:
-        raise ValueError(f"{name}: expected {n} rows (one per orbit), got {arr.shape[0]}")
-    bad = ~np.all(np.isfinite(arr), axis=1)
-    if np.any(bad):
-        raise ValueError(f"{name}: expected finite values, got NaN or infinity (first in row "
-                         f"{int(np.flatnonzero(bad)[0])})")
-    return np.ascontiguousarray(arr)
+    """(n, 3) finite vectors in internal units (swerve.orbits.as_vectors), C-contiguous for the kernel."""
+    return np.ascontiguousarray(as_vectors(value, kind, name, n))
 
 
 def _times(value, name, n, track):
