@@ -93,7 +93,7 @@ FIT_SCHEMA = Schema("fit", (
             doc="widen the likelihood by its curvature adjustment at the maximum (swerve.adjustment): the per-cell "
                 "model overstates the information on the launch slope and the disk mass, and the adjustment "
                 "calibrates the slope's intervals (benchmarks/RESULTS.md); false: the plain likelihood"),
-        # mixture with a background population (swerve.background; helper of issue 23)
+        # mixture with a background population (swerve.background)
         Key("background", "str", "none", choices=("none", "halo"),
             doc="'halo': each star is a hypervelocity star with probability f_hvs (a parameter, prior in [priors], "
                 "uniform on [0, 1] by default) or a stellar-halo star (velocity ellipsoid halo_sigma); per-star "
