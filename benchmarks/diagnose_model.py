@@ -70,12 +70,13 @@ import numpy as np
 def cells(args):
     from scipy import stats
 
-    from swerve.catalog import catalog_from_table, draw_samples
+    from swerve.catalog import catalog_from_table
     from swerve.emulate import load
     from swerve.likelihood import Likelihood, prepare_stars, smoothed_samples
+    from swerve.measurement import draw_samples, parse_error_model
     from swerve.simulate import training_setup_from_dict
     from swerve.summaries import SummarySpec
-    from swerve.validation import _grid_theta, draw_catalogs, parse_error_model, validation_bank
+    from swerve.validation import _grid_theta, draw_catalogs, validation_bank
 
     emu = load(args.emulator)
     spec = SummarySpec.from_dict(emu.metadata["summaries"])
@@ -204,8 +205,9 @@ def fixed(args):
     import time
 
     from swerve.emulate import load
+    from swerve.measurement import parse_error_model
     from swerve.simulate import training_setup_from_dict
-    from swerve.validation import draw_catalogs, fit_many, parse_error_model, validation_bank
+    from swerve.validation import draw_catalogs, fit_many, validation_bank
 
     emu = load(args.emulator)
     setup = training_setup_from_dict(emu.metadata["config"])
@@ -285,12 +287,13 @@ def along(args):
 def sandwich(args):
     import time
 
-    from swerve.catalog import catalog_from_table, draw_samples
+    from swerve.catalog import catalog_from_table
     from swerve.emulate import load
     from swerve.likelihood import Likelihood, prepare_stars, smoothed_samples
+    from swerve.measurement import draw_samples, parse_error_model
     from swerve.simulate import training_setup_from_dict
     from swerve.summaries import SummarySpec
-    from swerve.validation import draw_catalogs, parse_error_model, validation_bank
+    from swerve.validation import draw_catalogs, validation_bank
 
     emu = load(args.emulator)
     setup = training_setup_from_dict(emu.metadata["config"])

@@ -41,7 +41,8 @@ def main():
     from swerve.fit import load_fit_config, star_terms
     from swerve.frames import SolarParameters
     from swerve.likelihood import Likelihood
-    from swerve.population import ErrorLaw, ErrorModel, make_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock
     from swerve.simulate import training_setup_from_dict
     from swerve.summaries import SummarySpec
 

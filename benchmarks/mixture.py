@@ -45,7 +45,7 @@ ERRORS = dict(parallax=0.02, distance_frac=0.10, pm=(0.0, 0.01, 1.0), corr_pmra_
 
 
 def _error_model():
-    from swerve.population import ErrorLaw, ErrorModel
+    from swerve.measurement import ErrorLaw, ErrorModel
 
     return ErrorModel(parallax=ErrorLaw(ERRORS["parallax"]), distance_frac=ErrorLaw(ERRORS["distance_frac"]),
                       pm=ErrorLaw(*ERRORS["pm"]), corr_pmra_pmdec=ERRORS["corr_pmra_pmdec"],

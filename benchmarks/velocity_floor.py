@@ -33,12 +33,13 @@ def main():
     ap.add_argument("--seed", type=int, default=5)
     args = ap.parse_args()
 
-    from swerve.catalog import catalog_from_table, draw_samples
+    from swerve.catalog import catalog_from_table
     from swerve.emulate import load
     from swerve.likelihood import Likelihood, prepare_stars, smoothed_samples
+    from swerve.measurement import draw_samples, parse_error_model
     from swerve.simulate import training_setup_from_dict
     from swerve.summaries import SummarySpec
-    from swerve.validation import _grid_theta, draw_catalogs, parse_error_model, validation_bank
+    from swerve.validation import _grid_theta, draw_catalogs, validation_bank
 
     floors = [float(f) for f in args.floors.split(",")]
     emu = load(args.emulator)

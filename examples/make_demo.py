@@ -30,7 +30,8 @@ import numpy as np
 
 from swerve.galaxy import HALO_FLATTENINGS, Galaxy
 from swerve.launch import BoundedPowerLawSpeed
-from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+from swerve.measurement import ErrorLaw, ErrorModel
+from swerve.population import make_mock, write_mock
 from swerve.selection import Selection
 
 SEED = 20261201

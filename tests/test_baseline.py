@@ -30,7 +30,7 @@ def _mock(small_bank, n, rng, errors, truth=False):
 
 def test_observed_v_theta_matches_truth_for_tiny_errors(small_bank, rng):
     """With errors far below the signal, v_theta' from the observed values equals the mock's truth."""
-    from swerve.population import ErrorModel
+    from swerve.measurement import ErrorModel
 
     t, cat = _mock(small_bank, 200, rng, ErrorModel(distance_frac=1e-7, pm=1e-8, vlos=1e-5), truth=True)
     v = observed_v_theta_folded(cat)
@@ -41,7 +41,7 @@ def test_ks_pvalues_uniform_for_catalogs_of_one_simulation(small_bank, rng):
     """KS p-values of two catalogs drawn from the same simulation are U(0, 1) (common knowledge of
     statistics): KS test of 300 p-values against the uniform. Sizes 40 and 67 keep the two-sample
     statistic's lattice fine enough for the p-values to be nearly continuous."""
-    from swerve.population import ErrorModel
+    from swerve.measurement import ErrorModel
 
     em = ErrorModel(distance_frac=0.05, pm=0.02, vlos=5.0)
     n_pairs, na, nb = 300, 40, 67

@@ -18,12 +18,12 @@ from swerve.catalog import (
     CatalogError,
     Problem,
     catalog_from_table,
-    draw_samples,
     options_from_config,
     parse_columns,
     parse_units,
     read_catalog,
 )
+from swerve.measurement import draw_samples
 
 WRITE_FORMAT = {"ecsv": "ascii.ecsv", "fits": "fits", "vot": "votable", "csv": "ascii.csv"}
 
@@ -813,7 +813,7 @@ def test_exponential_prior_mode_is_bailer_jones_cubic_root(plx, sig, L):
     the cubic from memory, and checked: setting d/dd [2 ln d - d/L - (plx - 1/d)^2 / (2 sig^2)]
     = 0 and multiplying by -d^3 gives it). swerve's posterior density (parallax_log_posterior
     moved to distance) and its weighted samples must peak there."""
-    from swerve.catalog import parallax_log_posterior
+    from swerve.measurement import parallax_log_posterior
 
     roots = np.roots([1.0 / L, -2.0, plx / sig**2, -1.0 / sig**2])
     real = roots[np.abs(roots.imag) < 1e-9].real
@@ -870,7 +870,7 @@ def test_parallax_zero_point(tmp_path):
 
 
 def test_distance_information_counts_prior_dominated_stars():
-    from swerve.catalog import distance_information, distance_warning
+    from swerve.measurement import distance_information, distance_warning
 
     t = make_table(6, parallax=True)
     t["parallax"] = [0.5, 0.04, -0.02, 0.0, 0.3, 0.05]

@@ -6,9 +6,10 @@ from astropy import units as u
 from astropy.coordinates import ICRS, Galactocentric, SkyCoord
 from astropy.table import Table
 
-from swerve.catalog import catalog_from_table, draw_samples
+from swerve.catalog import catalog_from_table
 from swerve.frames import galacto_to_helio
 from swerve.likelihood import DEFAULT_VELOCITY_FLOOR, Likelihood, prepare_stars, velocity_moments
+from swerve.measurement import draw_samples
 from swerve.summaries import SummarySpec, folded_components
 
 SPEC1 = SummarySpec(r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0))

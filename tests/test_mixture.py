@@ -16,9 +16,10 @@ from swerve.background import (
     mixture_loglike,
     prior_membership,
 )
-from swerve.catalog import catalog_from_table, draw_samples
+from swerve.catalog import catalog_from_table
 from swerve.frames import galacto_to_helio, spherical_components
 from swerve.likelihood import Likelihood, prepare_stars
+from swerve.measurement import draw_samples
 from swerve.summaries import SummarySpec
 
 SPEC1 = SummarySpec(r_edges=(10.0, 250.0), lat_edges=(0.0, 90.0))

@@ -9,7 +9,8 @@ from swerve.catalog import COLUMNS, read_catalog
 from swerve.cli import main
 from swerve.galaxy import Galaxy
 from swerve.launch import BoundedPowerLawSpeed
-from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+from swerve.measurement import ErrorLaw, ErrorModel
+from swerve.population import make_mock, write_mock
 from swerve.selection import Selection
 
 SEL = Selection(r_min=10.0, r_max=60.0, outgoing=True)

@@ -9,10 +9,9 @@ from swerve.bank import BankCoverageError, build_bank, effective_sample_size
 from swerve.frames import folded_v_theta, spherical_components
 from swerve.galaxy import Galaxy
 from swerve.launch import BoundedPowerLawSpeed
+from swerve.measurement import ErrorLaw, ErrorModel
 from swerve.orbits import integrate
 from swerve.population import (
-    ErrorLaw,
-    ErrorModel,
     LowESSError,
     LowESSWarning,
     population_from_bank,

@@ -239,8 +239,8 @@ def test_histogram_gradient_in_the_cell_means(rng):
 
 def test_star_beyond_the_histogram_is_reported(rng):
     """A star faster than the histogram's last edge is excluded with its reason, never used."""
-    from swerve.catalog import draw_samples
     from swerve.likelihood import prepare_stars
+    from swerve.measurement import draw_samples
     from test_likelihood import _catalog  # toy catalog with v_r ≈ 500 km/s
 
     cat, _ = _catalog(rng, n=5)

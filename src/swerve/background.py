@@ -51,6 +51,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy.special import log_ndtr
+
+from .fileio import did_you_mean
 
 __all__ = [
     "BACKGROUNDS",
@@ -122,8 +125,6 @@ def halo_log_density(mean, cov, log_w, sigma=HALO_SIGMA, outgoing: bool = True) 
         logdet = 2.0 * np.sum(np.log(np.diagonal(L, axis1=-2, axis2=-1)), axis=-1)
         lp = -0.5 * np.sum(y * y, axis=-1) - 0.5 * logdet - 1.5 * _LOG_2PI
         if outgoing:
-            from scipy.special import log_ndtr
-
             Si = np.linalg.inv(Sv)
             sr2 = s[0] ** 2
             a = sr2 * np.einsum("...j,...j->...", Si[..., 0, :], mv)  # [Σ S⁻¹ m]_r (Σ diagonal)
@@ -180,8 +181,6 @@ def prior_membership(catalog, ids, column: str) -> np.ndarray:
     """
     extra = getattr(catalog, "extra", {}) or {}
     if column not in extra:
-        from .fileio import did_you_mean
-
         raise ValueError(f"{catalog.source}: no column {column!r} of prior memberships"
                          f"{did_you_mean(column, list(extra))}; the catalog's other columns: "
                          f"{', '.join(sorted(extra)) or 'none'}")

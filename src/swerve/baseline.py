@@ -17,6 +17,9 @@ choice.  Functions here are plain: arrays in, arrays out; the mocks are made by 
 from __future__ import annotations
 
 import numpy as np
+from scipy.stats import ks_2samp
+
+from .frames import folded_v_theta, helio_to_galacto
 
 
 def observed_v_theta_folded(catalog, solar=None) -> np.ndarray:
@@ -30,8 +33,6 @@ def observed_v_theta_folded(catalog, solar=None) -> np.ndarray:
     solar : None, str or SolarParameters
         Solar parameters of the transform (default "v4.0").
     """
-    from .frames import folded_v_theta, helio_to_galacto
-
     d = np.asarray(catalog.distance, dtype=float).copy()
     plx = np.asarray(catalog.parallax, dtype=float)
     use_plx = ~np.isfinite(d)
@@ -60,8 +61,6 @@ def ks_pvalues(sample, references) -> np.ndarray:
     -------
     array of shape (n_references,)
     """
-    from scipy.stats import ks_2samp
-
     x = np.asarray(sample, dtype=float)
     x = x[np.isfinite(x)]
     if x.size == 0:

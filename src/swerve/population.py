@@ -1,4 +1,4 @@
-"""Present-day populations, the measurement-error model and mock catalogs.
+"""Present-day populations and mock catalogs.
 
 :func:`population_from_bank` turns a :class:`~swerve.bank.TrajectoryBank` and any launch model
 into a weighted present-day :class:`Population` (weights from :func:`swerve.bank.sample_weights`,
@@ -13,20 +13,21 @@ The ESS reported is Kish's ``(Σw)²/Σw²`` over samples; :attr:`Population.ess
 same over the weights summed per bank orbit, a more conservative count (samples of one orbit
 at different flight times are different stars but share a launch direction and speed).
 
-:class:`ErrorModel` states a survey's uncertainties; :func:`make_mock` draws a finite,
-unweighted sample of selected stars, adds errors, and returns an astropy Table with exactly the
-columns and units of an observed catalog (:data:`swerve.catalog.COLUMNS`), with the true
-parameters and every setting in its meta; :func:`write_mock` writes it atomically (ECSV, FITS
-or CSV, from the file name).
+:func:`make_mock` draws a finite, unweighted sample of selected stars, adds the errors of a
+survey's :class:`swerve.measurement.ErrorModel` (the measurement model), and returns an
+astropy Table with exactly the columns and units of an observed catalog
+(:data:`swerve.catalog.COLUMNS`), with the true parameters and every setting in its meta;
+:func:`write_mock` writes it atomically (ECSV, FITS or CSV, from the file name).
 
 Selection is applied to the *true* positions and velocities (as for the simulated summaries);
-errors are added afterwards.
+errors are added afterwards, except for a cut on a measured quantity
+(:data:`swerve.selection.MEASURED_CUTS`, e.g. ``vlos_min``): a mock applies it to the measured
+value, dropping the stars whose measurement fails it and drawing others, as a survey would.
 """
 
 from __future__ import annotations
 
 import json
-import math
 import os
 import warnings
 from dataclasses import dataclass, field, replace
@@ -35,12 +36,11 @@ import numpy as np
 
 from . import __version__
 from .bank import TrajectoryBank, build_bank, effective_sample_size, sample_weights
+from .measurement import ErrorModel
 
 __all__ = [
     "DEFAULT_MIN_ESS",
     "DEFAULT_WARN_ESS",
-    "ErrorLaw",
-    "ErrorModel",
     "LowESSError",
     "LowESSWarning",
     "Population",
@@ -55,9 +55,6 @@ __all__ = [
 DEFAULT_MIN_ESS = 20.0
 #: below this effective sample size a LowESSWarning is issued
 DEFAULT_WARN_ESS = 200.0
-
-#: reference distance of the error laws, kpc
-ERROR_D_REF = 10.0
 
 
 class LowESSError(ValueError):
@@ -348,7 +345,7 @@ def select_bank(bank: TrajectoryBank, selection=None, *, galaxy=None, solar=None
     pos, vel = bank.pos, bank.vel
     if selection is not None:
         helio_cuts = selection.needs_heliocentric
-        galacto = replace(selection, d_min=None, d_max=None, abs_b_min=None, dec_min=None, dec_max=None)
+        galacto = selection.galactocentric()
         mask, removed = galacto.apply(pos, vel, galaxy=galaxy, report=True)
         idx = np.flatnonzero(mask)
         pos, vel = pos[idx], vel[idx]
@@ -425,168 +422,6 @@ def population_from_bank(bank: TrajectoryBank, launch, *, selection=None, galaxy
     view = select_bank(bank, selection, galaxy=galaxy, solar=solar, mirror=mirror, rng=rng)
     return view.population(launch, flight_time_max=flight_time_max, mass_range=mass_range,
                            min_ess=min_ess, warn_ess=warn_ess, max_missing=max_missing)
-
-
-# --------------------------------------------------------------------------------------------
-# error model
-
-
-@dataclass(frozen=True)
-class ErrorLaw:
-    """An uncertainty growing with heliocentric distance: ``σ(d) = a + b (d / 10 kpc)**p``.
-
-    ``a`` and ``b`` in the unit of the quantity (mas, mas/yr, km/s, or a fraction); constant
-    when ``b = 0``. Examples: ``ErrorLaw(0.02)`` is ±0.02 everywhere; ``ErrorLaw(0, 0.01, 1)``
-    is 0.01 at 10 kpc, growing linearly with distance.
-    """
-
-    a: float
-    b: float = 0.0
-    p: float = 1.0
-
-    def __post_init__(self):
-        vals = []
-        for name in ("a", "b", "p"):
-            v = getattr(self, name)
-            try:
-                fv = float(v)
-            except (TypeError, ValueError):
-                raise ValueError(f"error law {name}: expected a number, got {v!r}") from None
-            if not (math.isfinite(fv) and fv >= 0):
-                raise ValueError(f"error law {name}: expected a finite non-negative number, got {v!r}")
-            vals.append(fv)
-            object.__setattr__(self, name, fv)
-        if vals[0] == 0 and vals[1] == 0:
-            raise ValueError("error law: a + b must be positive (an uncertainty of zero)")
-
-    def __call__(self, d):
-        """σ at heliocentric distances ``d`` (kpc)."""
-        return self.a + self.b * (np.asarray(d, dtype=float) / ERROR_D_REF) ** self.p
-
-    def to_dict(self) -> dict:
-        return {"a": self.a, "b": self.b, "p": self.p}
-
-    @classmethod
-    def parse(cls, value, name="error law") -> ErrorLaw:
-        """From a number, ``[a, b, p]`` / ``[a, b]``, ``"a,b,p"`` or a dict."""
-        if isinstance(value, ErrorLaw):
-            return value
-        if isinstance(value, dict):
-            unknown = set(value) - {"a", "b", "p"}
-            if unknown:
-                raise ValueError(f"{name}: unknown keys {sorted(unknown)}; expected a, b, p")
-            return cls(**value)
-        if isinstance(value, str):
-            try:
-                value = [float(x) for x in value.split(",")]
-            except ValueError:
-                raise ValueError(f"{name}: expected A[,B[,P]] numbers, got {value!r}") from None
-        if isinstance(value, (int, float)) and not isinstance(value, bool):
-            return cls(float(value))
-        if isinstance(value, (list, tuple)) and 1 <= len(value) <= 3:
-            return cls(*value)
-        raise ValueError(f"{name}: expected a number, A,B[,P] or a table {{a, b, p}}, got {value!r}")
-
-
-@dataclass(frozen=True)
-class ErrorModel:
-    """Gaussian measurement errors of a survey, each a :class:`ErrorLaw` of distance.
-
-    Parameters
-    ----------
-    parallax : ErrorLaw or None
-        Parallax uncertainty, mas (the catalog gets ``parallax`` + ``parallax_err``).
-    distance_frac : ErrorLaw or None
-        Fractional uncertainty of an independent (e.g. spectrophotometric) distance (the
-        catalog gets ``distance`` + ``distance_err``). At least one of ``parallax`` and
-        ``distance_frac``; with both, both pairs are written (independent measurements).
-    pm : ErrorLaw
-        Uncertainty of each of pmra (incl. cos dec) and pmdec, mas/yr.
-    corr_pmra_pmdec : float
-        Correlation of the pmra and pmdec errors, in (-1, 1).
-    vlos : ErrorLaw
-        Line-of-sight velocity uncertainty, km/s.
-
-    Notes
-    -----
-    Each σ is evaluated at the star's *true* distance and written as the catalog's ``_err``.
-    Observed parallaxes are Gaussian and may be zero or negative: :mod:`swerve.catalog` refuses
-    such a row unless it also has a distance, so a parallax-only model warns
-    (:func:`make_mock`) when it draws one; add ``distance_frac`` for catalogs that every command
-    reads. Observed distances are Gaussian with σ = f d_true, truncated to positive values
-    (redrawn).
-    """
-
-    parallax: ErrorLaw | None = None
-    distance_frac: ErrorLaw | None = None
-    pm: ErrorLaw = ErrorLaw(0.0, 0.01, 1.0)
-    corr_pmra_pmdec: float = 0.0
-    vlos: ErrorLaw = ErrorLaw(5.0)
-
-    def __post_init__(self):
-        for name in ("parallax", "distance_frac", "pm", "vlos"):
-            v = getattr(self, name)
-            if v is not None:
-                object.__setattr__(self, name, ErrorLaw.parse(v, f"error model {name}"))
-        if self.parallax is None and self.distance_frac is None:
-            raise ValueError("error model: give a parallax (mas) or a distance_frac (fraction) uncertainty, or both")
-        if self.pm is None or self.vlos is None:
-            raise ValueError("error model: pm and vlos uncertainties are required")
-        rho = float(self.corr_pmra_pmdec)
-        if not (math.isfinite(rho) and -1.0 < rho < 1.0):
-            raise ValueError(f"error model corr_pmra_pmdec: expected a correlation in (-1, 1), got {self.corr_pmra_pmdec!r}")
-        object.__setattr__(self, "corr_pmra_pmdec", rho)
-
-    def to_dict(self) -> dict:
-        return {"parallax": None if self.parallax is None else self.parallax.to_dict(),
-                "distance_frac": None if self.distance_frac is None else self.distance_frac.to_dict(),
-                "pm": self.pm.to_dict(), "corr_pmra_pmdec": self.corr_pmra_pmdec, "vlos": self.vlos.to_dict(),
-                "law": "sigma(d) = a + b (d / 10 kpc)**p at the true heliocentric distance d"}
-
-    @classmethod
-    def from_dict(cls, d: dict) -> ErrorModel:
-        d = {k: v for k, v in d.items() if k != "law"}
-        unknown = set(d) - {"parallax", "distance_frac", "pm", "corr_pmra_pmdec", "vlos"}
-        if unknown:
-            raise ValueError(f"error model: unknown keys {sorted(unknown)}")
-        return cls(**d)
-
-    def observe(self, helio: dict, rng) -> dict:
-        """Noisy observables and their uncertainties from true heliocentric ``helio``
-        (:func:`swerve.frames.galacto_to_helio` output)."""
-        d = np.asarray(helio["distance"], dtype=float)
-        n = d.size
-        out = {"ra": helio["ra"], "dec": helio["dec"]}
-        if self.parallax is not None:
-            s = self.parallax(d)
-            out["parallax"] = helio["parallax"] + s * rng.standard_normal(n)
-            out["parallax_err"] = s
-        if self.distance_frac is not None:
-            s = self.distance_frac(d) * d
-            obs = d + s * rng.standard_normal(n)
-            bad = obs <= 0
-            for _ in range(1000):
-                if not bad.any():
-                    break
-                obs[bad] = d[bad] + s[bad] * rng.standard_normal(int(bad.sum()))
-                bad = obs <= 0
-            else:  # pragma: no cover - only for absurd fractional errors
-                raise ValueError("error model distance_frac: cannot draw positive distances; lower it")
-            out["distance"] = obs
-            out["distance_err"] = s
-        s_pm = self.pm(d)
-        rho = self.corr_pmra_pmdec
-        e1 = rng.standard_normal(n)
-        e2 = rho * e1 + math.sqrt(1.0 - rho * rho) * rng.standard_normal(n)
-        out["pmra"] = helio["pmra"] + s_pm * e1
-        out["pmra_err"] = s_pm
-        out["pmdec"] = helio["pmdec"] + s_pm * e2
-        out["pmdec_err"] = s_pm.copy()
-        s_v = self.vlos(d)
-        out["vlos"] = helio["vlos"] + s_v * rng.standard_normal(n)
-        out["vlos_err"] = s_v
-        out["corr_pmra_pmdec"] = np.full(n, rho)
-        return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -678,15 +513,19 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
         if bank.r_min_store > r_min + 1e-9 or bank.r_max < r_max - 1e-9:
             raise ValueError(f"bank: it stores {bank.r_min_store:g}-{bank.r_max:g} kpc but the selection "
                              f"needs {r_min:g}-{r_max:g} kpc")
-    pop = population_from_bank(bank, launch, selection=selection, galaxy=galaxy, solar=sol,
+    pop = population_from_bank(bank, launch, selection=selection.true_value_cuts(), galaxy=galaxy, solar=sol,
                                flight_time_max=flight_time_max, mass_range=mass_range, mirror="random",
                                rng=rng, min_ess=min_ess, warn_ess=warn_ess)
     if pop.ess < n:
         warnings.warn(f"mock: {n} stars drawn from a population of effective sample size {pop.ess:.0f}; "
                       "stars will repeat (before errors): use a larger bank", LowESSWarning, stacklevel=2)
-    stars = pop.resample(int(n), rng)
-    helio = stars.helio(sol)
-    obs = error_model.observe(helio, rng)
+    if selection.has_measured_cuts:
+        stars, helio, obs, measured = _draw_measured(pop, selection, error_model, int(n), rng, sol)
+    else:
+        stars = pop.resample(int(n), rng)
+        helio = stars.helio(sol)
+        obs = error_model.observe(helio, rng)
+        measured = None
     if error_model.distance_frac is None and np.any(obs["parallax"] <= 0):
         warnings.warn(f"mock: {int(np.sum(obs['parallax'] <= 0))} of {n} observed parallaxes are <= 0 and the "
                       "error model gives no distance: swerve.catalog refuses those rows; add distance_frac",
@@ -731,7 +570,8 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
         "flight_time_max": pop.meta["flight_time_max"],
         "mass_range": pop.meta.get("mass_range"),
         "selection": selection.to_dict(),
-        "selection_applied_to": "true positions and velocities",
+        "selection_applied_to": "true positions and velocities" if measured is None else
+        "true positions and velocities; " + ", ".join(f"{k} to the measured value" for k in measured["cuts"]),
         "error_model": error_model.to_dict(),
         "seed": seed if seed is not None else "not recorded (a Generator was passed)",
         "solar": sol.to_dict(),
@@ -740,10 +580,52 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
         "population_ess": pop.ess,
         "population_ess_orbits": pop.ess_orbits,
         "expected_stars_per_ejection_rate_myr": pop.total_weight,
-        "selection_removed": pop.meta["selection_removed"],
+        "selection_removed": pop.meta["selection_removed"] if measured is None else
+        dict(pop.meta["selection_removed"], **{f"{k} (measured)": measured["removed"] for k in measured["cuts"]}),
         "n_stars": int(n),
     }))
+    if measured is not None:
+        t.meta["measured_cut_pass_fraction"] = measured["pass_fraction"]
     return t
+
+
+def _draw_measured(pop: Population, selection, error_model, n: int, rng, solar, max_factor: int = 200):
+    """``n`` stars whose *measured* values pass the selection's measured cuts, as a survey
+    selects them: stars are drawn from ``pop`` (selected on true values by the other cuts),
+    measured with ``error_model``, and those whose measurement fails a measured cut are dropped,
+    in batches until ``n`` are kept. Returns (stars, true heliocentric observables, measured
+    observables, {"cuts", "removed", "pass_fraction"}); ``removed`` and ``pass_fraction`` count
+    the stars examined up to the last one kept. Refuses (ValueError) a cut that keeps fewer than
+    one star in ``max_factor``."""
+    from .selection import MEASURED_CUTS
+
+    parts, kept, examined = [], 0, 0
+    frac = None
+    while kept < n:
+        need = n - kept
+        m = max(need, 64) if frac is None else int(min(1.25 * need / max(frac, 1.0 / max_factor) + 32, 10 * n + 1000))
+        batch = pop.resample(m, rng)
+        helio = batch.helio(solar)
+        obs = error_model.observe(helio, rng)
+        ok = np.flatnonzero(selection.measured_mask(obs["vlos"]))[:need]
+        examined += m if len(ok) < need else int(ok[-1]) + 1
+        kept += len(ok)
+        parts.append((batch._take(ok), {k: np.asarray(v)[ok] for k, v in helio.items()},
+                      {k: np.asarray(v)[ok] for k, v in obs.items()}))
+        frac = kept / examined
+        if kept < n and examined >= max_factor * n:
+            cuts = ", ".join(f"{k} = {getattr(selection, k):g}" for k in MEASURED_CUTS if getattr(selection, k) is not None)
+            raise ValueError(f"selection {cuts}: only {kept} of {examined} measured stars pass it; "
+                             "loosen the cut (it is applied to the measured values)")
+    stars = parts[0][0]
+    if len(parts) > 1:
+        cat = {f: np.concatenate([getattr(p[0], f) for p in parts]) for f in
+               ("pos", "vel", "weight", "orbit", "t_flight", "v_launch")}
+        stars = replace(stars, **cat)
+    helio = {k: np.concatenate([p[1][k] for p in parts]) for k in parts[0][1]}
+    obs = {k: np.concatenate([p[2][k] for p in parts]) for k in parts[0][2]}
+    cuts = [k for k in MEASURED_CUTS if getattr(selection, k) is not None]
+    return stars, helio, obs, {"cuts": cuts, "removed": examined - n, "pass_fraction": n / examined}
 
 
 _WRITE_FORMATS = {".ecsv": "ascii.ecsv", ".fits": "fits", ".csv": "ascii.csv"}

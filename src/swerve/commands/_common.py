@@ -13,6 +13,9 @@ import contextlib
 import sys
 from pathlib import Path
 
+from .. import resources
+from ..config import ConfigError, validate
+
 #: exit codes
 EXIT_OK = 0
 EXIT_ERROR = 1
@@ -87,8 +90,6 @@ def check_option(option: str, value, schema, section: str, key: str, shown=None)
     naming the option, e.g. ``--max-steps 10: expected an integer >= 50``, never the
     configuration's section and key.
     """
-    from ..config import ConfigError, validate
-
     if value is None:
         return None
     try:
@@ -116,9 +117,7 @@ def existing_catalog(path) -> Path:
 
 def default_emulator() -> Path:
     """The shipped default emulator (:func:`swerve.resources.default_emulator`)."""
-    from ..resources import default_emulator as shipped
-
-    return Path(shipped())
+    return Path(resources.default_emulator())
 
 
 def emulator_option(value) -> Path:
@@ -147,7 +146,7 @@ def worker_pool():
         ok = True
     finally:
         try:
-            from joblib.externals.loky import reusable_executor
+            from joblib.externals.loky import reusable_executor  # noqa: PLC0415 - lazy: keeps the CLI's start fast
         except ImportError:  # pragma: no cover - joblib without loky
             reusable_executor = None
         executor = getattr(reusable_executor, "_executor", None)
