@@ -8,10 +8,11 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from swerve.catalog import draw_samples, read_catalog
+from swerve.catalog import read_catalog
 from swerve.cli import build_parser, main
 from swerve.frames import galacto_to_helio
 from swerve.galaxy import Galaxy
+from swerve.measurement import draw_samples
 from swerve.trace import (
     TRACE_COLUMNS,
     trace_catalog,
@@ -157,7 +158,8 @@ def test_backward_path_matches_gala():
 def launched(tmp_path_factory):
     """Stars launched radially from 3 pc by the forward model, observed with tiny errors."""
     from swerve.launch import BoundedPowerLawSpeed
-    from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock, write_mock
     from swerve.selection import Selection
 
     g = Galaxy.default(q_z=0.9)
@@ -192,7 +194,8 @@ def test_noiseless_radial_paths_through_the_point_mass_are_kept():
     """The exact truth of a mock passes ~1e-9 kpc from the point mass, where the integrator
     may give up with a step underflow: such a path has reached the centre and is kept."""
     from swerve.launch import BoundedPowerLawSpeed
-    from swerve.population import ErrorLaw, ErrorModel, make_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock
     from swerve.selection import Selection
 
     g = Galaxy.default()
@@ -236,7 +239,8 @@ def test_trace_help_documents_every_option(capsys):
     text = capsys.readouterr().out
     options = [s for a in sub._actions for s in a.option_strings if s.startswith("--")]
     for needed in ("--param", "--halo-flattening", "--samples", "--radius", "--max-time", "--out", "--plot",
-                   "--columns", "--units", "--drop-invalid", "--seed", "--distance-prior", "--solar"):
+                   "--columns", "--units", "--drop-invalid", "--seed", "--distance-prior", "--solar", "--lmc",
+                   "--lmc-mass", "--lmc-radius"):
         assert needed in options
     for a in sub._actions:
         if a.option_strings and a.help != argparse.SUPPRESS:  # hidden: deprecated old spellings

@@ -31,7 +31,25 @@ Method
 * **Closest approaches**, to the Galactic Centre and to the LMC's centre: at each accepted step
   the sign of ``d . d_dot`` (``d`` the offset from the centre) is checked at both ends and a
   change is located by bisection on the step's quintic Hermite interpolant (of x, v and a at
-  both ends, no extra force evaluations) and on the track's interpolant.
+  both ends, no extra force evaluations) and on the track's interpolant.  With each closest
+  approach to the Galactic Centre the running integral ``W = int dPhi/dt dt`` is kept (linear
+  within the step), so the energy there is ``E(t0) + W`` (``LMCOrbitResult.w_r_min``).
+* **Early stops** (off by default; :func:`integrate_lmc`'s ``r_stop`` and ``no_return``, used
+  by ``swerve trace --lmc``), checked at the end of each accepted step:
+
+  - *the Galactic Centre passed*: the path has come within ``r_stop`` of the Galactic Centre
+    (the closest approach so far, between steps included) and is outside that sphere again;
+  - *no return*: the path recedes from the Galactic Centre and from the LMC's centre in the
+    direction of integration (``sign(dt) x . v > 0`` and ``sign(dt) d . d_dot > 0``), and is
+    unbound from both: ``v^2/2 + Phi_MW(x) > 0`` (the static Galaxy) and
+    ``|d_dot|^2/2 - G m_lmc / (|d| + a_lmc) > 0``.  In the static Galaxy alone (spherical) such
+    a path never comes back; with the LMC's tide and the frame's acceleration it is an
+    approximation, checked against full integration in tests/test_trace_lmc.py and
+    benchmarks/RESULTS.md ("Trace with the LMC").  Bound paths are never stopped by it, nor
+    paths that have been within ``r_stop`` (they stop on leaving that sphere).
+
+  An orbit stopped early has status :data:`swerve.orbits.STATUS_STOPPED` and its reason in
+  ``LMCOrbitResult.stop_reason``; its closest approaches are those of the integrated part.
 * **Failures** are flagged in ``status`` (codes of :mod:`swerve.orbits`), never silent.
 
 Units: kpc, km/s, Myr at the public boundary; inside, time in ``kpc/(km/s)``.
@@ -70,11 +88,21 @@ __all__ = [
     "DEFAULT_LMC_RADIUS",
     "LMCEncounter",
     "LMCOrbitResult",
+    "STOP_GC",
+    "STOP_NONE",
+    "STOP_NO_RETURN",
+    "frame_potential",
     "integrate_lmc",
     "lmc_encounter",
+    "lmc_origin_stats",
+    "stop_names",
 ]
 
-#: Default radius of the LMC-origin test, kpc (a choice: about the extent of the LMC's disk).
+#: Default radius of the LMC-origin test, kpc.  A choice, stated: a little over three scale
+#: lengths of the LMC's stellar disk (exponential scale length ~1.5 kpc, van der Marel 2001,
+#: AJ 122, 1827; from memory), well inside the Hernquist scale radius of the whole LMC (16 kpc
+#: for 1.38e11 Msun), and a few times the spread that a 10% distance error at 50 kpc gives a
+#: traced path.
 DEFAULT_LMC_RADIUS = 5.0
 
 _NS = 12
@@ -88,10 +116,20 @@ _FLAGS = dict(cache=True, error_model="numpy", fastmath={"contract"})
 _inline = nb.njit(**_FLAGS)
 
 # result columns
-_F_T, _F_DE, _F_RMIN, _F_TRMIN, _F_DMIN, _F_TDMIN, _F_VREL = 0, 1, 2, 3, 4, 5, 6
-_NF = 7
-_I_STATUS, _I_STEPS, _I_REJ, _I_FORCE = 0, 1, 2, 3
-_NI = 4
+_F_T, _F_DE, _F_RMIN, _F_TRMIN, _F_DMIN, _F_TDMIN, _F_VREL, _F_WRMIN, _F_RMAX = 0, 1, 2, 3, 4, 5, 6, 7, 8
+_NF = 9
+_I_STATUS, _I_STEPS, _I_REJ, _I_FORCE, _I_STOP = 0, 1, 2, 3, 4
+_NI = 5
+# stop settings (the kernel's ``stop`` array): radius about the Galactic Centre (inf: off) and
+# the no-return rule (1.0: on)
+_S_RGC, _S_NORETURN = 0, 1
+
+#: Why an orbit stopped early (``LMCOrbitResult.stop_reason``): not at all (it reached its end
+#: time, or failed), after a passage within ``r_stop`` of the Galactic Centre, or by the
+#: no-return rule.
+STOP_NONE, STOP_GC, STOP_NO_RETURN = 0, 1, 2
+stop_names = {STOP_NONE: "not stopped early", STOP_GC: "passed the Galactic Centre",
+              STOP_NO_RETURN: "receding, unbound, from both centres"}
 
 
 @_inline
@@ -225,18 +263,22 @@ def _offset_g(table, tp, s0, s1, acc0, acc1, t, h, th, lmc, tmp):
 
 
 @_inline
-def _closest(table, tp, s0, s1, acc0, acc1, t, h, lmc, best, tmp):
-    """Update best = [d_min, t_min, speed] with the step's ends and any minimum inside it."""
+def _closest(table, tp, s0, s1, acc0, acc1, t, h, lmc, best, tmp, W, dW):
+    """Update best = [d_min, t_min, speed, W] with the step's ends and any minimum inside it
+    (W: the running integral of dPhi/dt, ``W`` at the step's start and ``W + dW`` at its end,
+    linear in between)."""
     g0, d0, w0 = _offset_g(table, tp, s0, s1, acc0, acc1, t, h, 0.0, lmc, tmp)
     g1, d1, w1 = _offset_g(table, tp, s0, s1, acc0, acc1, t, h, 1.0, lmc, tmp)
     if d1 < best[0] * best[0]:
         best[0] = math.sqrt(d1)
         best[1] = t + h
         best[2] = w1
+        best[3] = W + dW
     if d0 < best[0] * best[0]:
         best[0] = math.sqrt(d0)
         best[1] = t
         best[2] = w0
+        best[3] = W
     if g0 * g1 < 0.0:
         lo = 0.0
         hi = 1.0
@@ -255,10 +297,12 @@ def _closest(table, tp, s0, s1, acc0, acc1, t, h, lmc, best, tmp):
             best[0] = math.sqrt(dm)
             best[1] = t + th * h
             best[2] = wm
+            best[3] = W + th * dW
 
 
 @nb.njit(**_FLAGS)
-def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_steps, y_out, res_f, res_i):
+def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, stop, rtol, atol, max_steps, y_out, res_f,
+                   res_i):
     A = _A
     B = _B
     C = _C
@@ -272,8 +316,8 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
     acc0 = np.empty(3)
     acc1 = np.empty(3)
     tmp = np.empty(6)
-    best_gc = np.empty(3)
-    best_l = np.empty(3)
+    best_gc = np.empty(4)
+    best_l = np.empty(4)
     for k in range(6):
         s0[k] = y0[k]
     t = t0
@@ -291,6 +335,12 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
     best_l[1] = t
     best_gc[2] = 0.0
     best_l[2] = 0.0
+    best_gc[3] = 0.0
+    best_l[3] = 0.0
+    r_max = math.sqrt(s0[0] * s0[0] + s0[1] * s0[1] + s0[2] * s0[2])
+    r_stop = stop[_S_RGC]
+    no_return = stop[_S_NORETURN] != 0.0
+    stop_reason = 0
     status = STATUS_OK
     n_steps = 0
     n_rej = 0
@@ -408,8 +458,8 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
                 acc1[0] = gx
                 acc1[1] = gy
                 acc1[2] = gz
-                _closest(table, tp, s0, s1, acc0, acc1, t, hs, False, best_gc, tmp)
-                _closest(table, tp, s0, s1, acc0, acc1, t, hs, True, best_l, tmp)
+                _closest(table, tp, s0, s1, acc0, acc1, t, hs, False, best_gc, tmp, W, dW)
+                _closest(table, tp, s0, s1, acc0, acc1, t, hs, True, best_l, tmp, W, dW)
                 t = t1 if last else t + hs
                 for k in range(6):
                     s0[k] = s1[k]
@@ -418,7 +468,32 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
                 w0 = gw
                 W += dW
                 n_steps += 1
+                r1 = math.sqrt(s0[0] * s0[0] + s0[1] * s0[1] + s0[2] * s0[2])
+                if r1 > r_max:
+                    r_max = r1
                 if last:
+                    break
+                # early stops (module docstring, "Early stops")
+                if best_gc[0] < r_stop and r1 > r_stop:
+                    stop_reason = 1
+                elif (no_return and best_gc[0] >= r_stop
+                      and direction * (s0[0] * s0[3] + s0[1] * s0[4] + s0[2] * s0[5]) > 0.0):
+                    X, Y, Z, VX, VY, VZ = _track(table, tp, t)
+                    dx = s0[0] - X
+                    dy = s0[1] - Y
+                    dz = s0[2] - Z
+                    dvx = s0[3] - VX
+                    dvy = s0[4] - VY
+                    dvz = s0[5] - VZ
+                    if direction * (dx * dvx + dy * dvy + dz * dvz) > 0.0:
+                        v2 = s0[3] * s0[3] + s0[4] * s0[4] + s0[5] * s0[5]
+                        e_mw = 0.5 * v2 + kernels.potential(kinds, pars, aux, s0[0], s0[1], s0[2])
+                        d1 = math.sqrt(dx * dx + dy * dy + dz * dz)
+                        e_l = 0.5 * (dvx * dvx + dvy * dvy + dvz * dvz) - tp[2] / (d1 + tp[3])
+                        if e_mw > 0.0 and e_l > 0.0:
+                            stop_reason = 2
+                if stop_reason != 0:
+                    status = STATUS_STOPPED
                     break
                 fac = 10.0 if err == 0.0 else min(10.0, max(0.2, 0.9 * err ** -0.125))
                 if rejected_last:
@@ -433,7 +508,7 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
     J1 = 0.5 * (s0[3] * s0[3] + s0[4] * s0[4] + s0[5] * s0[5]) + phi1 - W
     scale = abs(phimw0) if phimw0 != 0.0 else abs(J0)
     de = abs(J1 - J0) / scale if scale > 0.0 else 0.0
-    if status == STATUS_OK and not math.isfinite(de):
+    if status <= STATUS_STOPPED and not math.isfinite(de):
         status = STATUS_NON_FINITE
     for k in range(6):
         y_out[k] = s0[k]
@@ -444,20 +519,24 @@ def _integrate_one(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_step
     res_f[_F_DMIN] = best_l[0]
     res_f[_F_TDMIN] = best_l[1]
     res_f[_F_VREL] = best_l[2]
+    res_f[_F_WRMIN] = best_gc[3]
+    res_f[_F_RMAX] = r_max
     res_i[_I_STATUS] = status
     res_i[_I_STEPS] = n_steps
     res_i[_I_REJ] = n_rej
     res_i[_I_FORCE] = n_force
+    res_i[_I_STOP] = stop_reason
 
 
 @nb.njit(parallel=True, **_FLAGS)
-def integrate_lmc_kernel(kinds, pars, aux, table, tp, y0, t0, t1, rtol, atol, max_steps,
+def integrate_lmc_kernel(kinds, pars, aux, table, tp, y0, t0, t1, stop, rtol, atol, max_steps,
                          y_out, res_f, res_i):
     """Integrate orbits ``y0`` (n, 6) from internal times ``t0`` (n,) to ``t1`` (n,) in the
-    LMC-perturbed Galaxy, in parallel; results into ``y_out`` (n, 6), ``res_f`` (n, 7),
-    ``res_i`` (n, 4)."""
+    LMC-perturbed Galaxy, in parallel, with the early stops ``stop`` = [radius about the Galactic
+    Centre (inf: off), no-return rule (1.0: on)]; results into
+    ``y_out`` (n, 6), ``res_f`` (n, 9), ``res_i`` (n, 5)."""
     for i in prange(y0.shape[0]):
-        _integrate_one(kinds, pars, aux, table, tp, y0[i], t0[i], t1[i], rtol, atol, max_steps,
+        _integrate_one(kinds, pars, aux, table, tp, y0[i], t0[i], t1[i], stop, rtol, atol, max_steps,
                        y_out[i], res_f[i], res_i[i])
 
 
@@ -487,6 +566,15 @@ class LMCOrbitResult:
     rtol, atol : float
     track : dict
         Provenance of the LMC track (:meth:`LMCTrack.to_dict`).
+    w_r_min : array (n,)
+        ``W = int_0^t dPhi/dt dt`` ((km/s)^2, along the path from its start) at the closest
+        approach to the Galactic Centre, so that the specific energy there is
+        ``E(t0) + w_r_min`` (module docstring, "Energy-like check").
+    r_max : array (n,)
+        Largest Galactocentric radius at the accepted steps, kpc.
+    stop_reason : int array (n,)
+        :data:`STOP_NONE`, :data:`STOP_GC` or :data:`STOP_NO_RETURN`
+        (:data:`stop_names`); an orbit stopped early has status :data:`swerve.orbits.STATUS_STOPPED`.
     """
 
     t0: np.ndarray
@@ -506,6 +594,9 @@ class LMCOrbitResult:
     rtol: float
     atol: float
     track: dict
+    w_r_min: np.ndarray | None = None
+    r_max: np.ndarray | None = None
+    stop_reason: np.ndarray | None = None
 
     @property
     def ok(self) -> np.ndarray:
@@ -525,6 +616,16 @@ def _vectors(value, kind, name, n=None):
     return np.ascontiguousarray(as_vectors(value, kind, name, n))
 
 
+def _stop_radius(value, name):
+    """A stop radius in kpc (inf when None)."""
+    if value is None:
+        return math.inf
+    v = units.to_internal(value, "length", name)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or math.isnan(v) or v <= 0:
+        raise ValueError(f"{name}: expected a positive radius in kpc, got {value!r}")
+    return float(v)
+
+
 def _times(value, name, n, track):
     arr = np.asarray(units.to_internal(value, "time", name), dtype=float)
     if arr.ndim == 0:
@@ -540,8 +641,8 @@ def _times(value, name, n, track):
     return np.clip(arr, track.t[0], track.t[-1])
 
 
-def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, rtol=DEFAULT_RTOL,
-                  atol=DEFAULT_ATOL, max_steps=DEFAULT_MAX_STEPS, on_failure="warn") -> LMCOrbitResult:
+def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, r_stop=None, no_return=False, rtol=DEFAULT_RTOL, atol=DEFAULT_ATOL, max_steps=DEFAULT_MAX_STEPS,
+                  on_failure="warn") -> LMCOrbitResult:
     """Integrate a batch of orbits in the LMC-perturbed Galaxy, each from its own start time.
 
     Parameters
@@ -558,6 +659,11 @@ def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, rtol=DE
         Start time of each orbit (a launch epoch: negative, before the present), within the track.
     t_end : float or array (n,), Myr
         End time of each orbit (default 0, the present); earlier than ``t0`` integrates backward.
+    r_stop : float or Quantity ['length'], optional
+        Stop an orbit once it has come within ``r_stop`` kpc of the Galactic Centre and is
+        outside it again (checked at accepted steps; module docstring, "Early stops").
+    no_return : bool
+        Stop an orbit once it recedes from both centres, unbound from both (module docstring).
     rtol, atol : float
         Tolerances of the error norm (as :func:`swerve.orbits.integrate`).
     max_steps : int
@@ -595,6 +701,7 @@ def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, rtol=DE
         raise ValueError(f"atol: expected a finite positive absolute tolerance, got {atol}")
     if isinstance(max_steps, bool) or int(max_steps) != max_steps or max_steps < 1:
         raise ValueError(f"max_steps: expected a positive integer, got {max_steps!r}")
+    stop = np.array([_stop_radius(r_stop, "r_stop"), 1.0 if no_return else 0.0])
     kinds, pars, aux = galaxy.kernel_args
     table, tp = track.kernel_args()
     y0 = np.ascontiguousarray(np.concatenate([pos0, vel0], axis=1))
@@ -605,7 +712,7 @@ def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, rtol=DE
         with nb.parallel_chunksize(1):
             integrate_lmc_kernel(kinds, pars, aux, table, tp, y0,
                                  np.ascontiguousarray(units.myr_to_internal(t0_myr)),
-                                 np.ascontiguousarray(units.myr_to_internal(t1_myr)),
+                                 np.ascontiguousarray(units.myr_to_internal(t1_myr)), stop,
                                  rtol, atol, int(max_steps), y_out, res_f, res_i)
     res = LMCOrbitResult(
         t0=t0_myr, t_final=units.internal_to_myr(res_f[:, _F_T]), pos=y_out[:, :3], vel=y_out[:, 3:],
@@ -614,7 +721,8 @@ def integrate_lmc(galaxy, track: LMCTrack, pos0, vel0, t0, t_end=0.0, *, rtol=DE
         energy_error=res_f[:, _F_DE].copy(), r_min=res_f[:, _F_RMIN].copy(),
         t_r_min=units.internal_to_myr(res_f[:, _F_TRMIN]), d_lmc_min=res_f[:, _F_DMIN].copy(),
         t_d_lmc_min=units.internal_to_myr(res_f[:, _F_TDMIN]), v_rel_lmc=res_f[:, _F_VREL].copy(),
-        rtol=rtol, atol=atol, track=track.to_dict(),
+        rtol=rtol, atol=atol, track=track.to_dict(), w_r_min=res_f[:, _F_WRMIN].copy(),
+        r_max=res_f[:, _F_RMAX].copy(), stop_reason=res_i[:, _I_STOP].copy(),
     )
     msg = res.failure_summary()
     if msg:
@@ -682,6 +790,74 @@ class LMCEncounter:
     meta: dict
 
 
+def frame_potential(galaxy, track: LMCTrack, x, t) -> np.ndarray:
+    """The potential whose time derivative the engine integrates, ``Phi_MW(x) + Phi_L(x - X(t))
+    + A_0(t) . x`` ((km/s)^2; module docstring), at positions ``x`` (m, 3) kpc in the Galactic
+    Centre's frame and times ``t`` (m,) Myr within the track.  With ``W`` of
+    :class:`LMCOrbitResult` the specific energy ``v^2/2 + frame_potential`` at time ``t`` equals
+    its value at the start plus ``W``."""
+    from .galaxy.lmc import hernquist_acceleration, hernquist_potential
+
+    x = np.asarray(x, dtype=float)
+    X, _ = track.interpolate(np.broadcast_to(np.asarray(t, dtype=float), x.shape[:-1]))
+    gm, a = track.lmc.gm, track.lmc.a_lmc
+    phi = galaxy.potential(x.reshape(-1, 3)).reshape(x.shape[:-1]) + hernquist_potential(x - X, gm, a)
+    if track.reflex:
+        phi = phi + np.sum(hernquist_acceleration(-X, gm, a) * x, axis=-1)
+    return phi
+
+
+def lmc_origin_stats(weights, usable, d_min, t_d_min, v_rel, radius) -> dict:
+    """Per-star summaries of the LMC origin from per-path closest approaches to its centre.
+
+    Parameters
+    ----------
+    weights : array (n, k)
+        Normalised weights, 0 for left-out paths.
+    usable : bool array (n, k)
+    d_min, t_d_min, v_rel : arrays (n, k)
+        Closest approach to the LMC's centre (kpc), its time (Myr, negative) and the speed
+        relative to the LMC's centre there (km/s).
+    radius : float
+        A path *passes* when ``d_min < radius`` (kpc).
+
+    Returns
+    -------
+    dict of arrays (n,)
+        ``p_lmc`` (weighted fraction of passing paths), ``n_pass_lmc``, ``d_lmc_min`` and
+        ``t_lmc_min`` (weighted medians over the usable paths of the closest approach and of the
+        time since it), ``t_flight_lmc``, ``v_eject_lmc`` with ``_lo``/``_hi`` (weighted median
+        and 16th/84th percentiles over the passing paths of the time since the closest approach
+        and of the relative speed there; NaN where none passes); and ``sample_pass`` (n, k).
+        NaN for stars without usable paths.
+    """
+    from .trace import weighted_quantile
+
+    n = weights.shape[0]
+    passes = usable & (d_min < radius)
+    out = {name: np.full(n, np.nan) for name in (
+        "p_lmc", "d_lmc_min", "t_lmc_min", "t_flight_lmc", "t_flight_lmc_lo", "t_flight_lmc_hi",
+        "v_eject_lmc", "v_eject_lmc_lo", "v_eject_lmc_hi")}
+    qs = [0.5, 0.16, 0.84]
+    for i in range(n):
+        wi = weights[i]
+        if not np.any(wi > 0):
+            continue
+        u = usable[i]
+        p = passes[i]
+        out["p_lmc"][i] = float(np.sum(wi[p]))
+        out["d_lmc_min"][i] = weighted_quantile(d_min[i][u], wi[u], 0.5)
+        out["t_lmc_min"][i] = weighted_quantile(-t_d_min[i][u], wi[u], 0.5)
+        if np.any(wi[p] > 0):
+            out["t_flight_lmc"][i], out["t_flight_lmc_lo"][i], out["t_flight_lmc_hi"][i] = \
+                weighted_quantile(-t_d_min[i][p], wi[p], qs)
+            out["v_eject_lmc"][i], out["v_eject_lmc_lo"][i], out["v_eject_lmc_hi"][i] = \
+                weighted_quantile(v_rel[i][p], wi[p], qs)
+    out["n_pass_lmc"] = passes.sum(axis=1)
+    out["sample_pass"] = passes
+    return out
+
+
 def _positive(value, kind, name):
     v = units.to_internal(value, kind, name)
     if isinstance(v, bool) or not isinstance(v, float) or not (math.isfinite(v) and v > 0):
@@ -694,6 +870,11 @@ def lmc_encounter(positions, velocities, times=-1000.0, *, galaxy=None, track=No
                   rtol=DEFAULT_RTOL, atol=DEFAULT_ATOL, chunk=8192, progress=None) -> LMCEncounter:
     """Trace present-day samples of stars backward in the LMC-perturbed Galaxy and measure how
     close each path came to the LMC's centre: the LMC as a second place of origin.
+
+    This is the plain, full-length form (each path to its own ``times``, no early stop).
+    ``swerve trace --lmc`` uses :func:`swerve.trace.trace_orbits` with ``lmc=...`` instead: the
+    same engine and per-star statistics (:func:`lmc_origin_stats`), with the Galactic-Centre
+    columns, the launch speed and the early stops.
 
     Each path is integrated from the present (t = 0) back to ``times`` in the Galactic Centre's
     frame (:func:`integrate_lmc`); its closest approach to the moving LMC centre (located between
@@ -739,7 +920,6 @@ def lmc_encounter(positions, velocities, times=-1000.0, *, galaxy=None, track=No
     """
     from .galaxy import Galaxy
     from .galaxy.lmc import lmc_orbit
-    from .trace import weighted_quantile
 
     pos = np.asarray(units.to_internal(positions, "length", "positions"), dtype=float)
     vel = np.asarray(units.to_internal(velocities, "velocity", "velocities"), dtype=float)
@@ -801,36 +981,21 @@ def lmc_encounter(positions, velocities, times=-1000.0, *, galaxy=None, track=No
     t_d = cols["td"].reshape(n, k)
     v_rel = cols["vr"].reshape(n, k)
     r_min = cols["r"].reshape(n, k)
-    passes = usable & (d_min < radius)
     w = np.where(usable, w_in, 0.0)
     sums = w.sum(axis=1, keepdims=True)
     w = np.divide(w, sums, out=np.zeros_like(w), where=sums > 0)
-    out = {name: np.full(n, np.nan) for name in (
-        "p_lmc", "d_min", "t_flight", "t_flight_lo", "t_flight_hi", "v_ejection", "v_ejection_lo",
-        "v_ejection_hi", "p_gc")}
-    qs = [0.5, 0.16, 0.84]
-    for i in range(n):
-        wi = w[i]
-        if not np.any(wi > 0):
-            continue
-        u = usable[i]
-        out["p_lmc"][i] = float(np.sum(wi[passes[i]]))
-        out["p_gc"][i] = float(np.sum(wi[u & (r_min[i] < radius_gc)]))
-        out["d_min"][i] = weighted_quantile(d_min[i][u], wi[u], [0.5])[0]
-        p = passes[i]
-        if np.any(wi[p] > 0):
-            out["t_flight"][i], out["t_flight_lo"][i], out["t_flight_hi"][i] = \
-                weighted_quantile(-t_d[i][p], wi[p], qs)
-            out["v_ejection"][i], out["v_ejection_lo"][i], out["v_ejection_hi"][i] = \
-                weighted_quantile(v_rel[i][p], wi[p], qs)
+    out = lmc_origin_stats(w, usable, d_min, t_d, v_rel, radius)
+    passes = out["sample_pass"]
+    out["p_gc"] = np.where(np.any(w > 0, axis=1), np.sum(np.where(usable & (r_min < radius_gc), w, 0.0), axis=1),
+                           np.nan)
     meta = {"radius_kpc": radius, "radius_gc_kpc": radius_gc, "launch_radius_kpc": launch_radius,
             "rtol": float(rtol), "atol": float(atol), "samples_per_star": int(k),
             "lmc_track": track.to_dict(), "galaxy": galaxy.to_dict(),
             "quantiles": "weighted, Hazen definition; *_lo/*_hi are the 16th/84th percentiles"}
     return LMCEncounter(
-        p_lmc=out["p_lmc"], n_pass=passes.sum(axis=1), d_min=out["d_min"], t_flight=out["t_flight"],
-        t_flight_lo=out["t_flight_lo"], t_flight_hi=out["t_flight_hi"], v_ejection=out["v_ejection"],
-        v_ejection_lo=out["v_ejection_lo"], v_ejection_hi=out["v_ejection_hi"], p_gc=out["p_gc"],
+        p_lmc=out["p_lmc"], n_pass=out["n_pass_lmc"], d_min=out["d_lmc_min"], t_flight=out["t_flight_lmc"],
+        t_flight_lo=out["t_flight_lmc_lo"], t_flight_hi=out["t_flight_lmc_hi"], v_ejection=out["v_eject_lmc"],
+        v_ejection_lo=out["v_eject_lmc_lo"], v_ejection_hi=out["v_eject_lmc_hi"], p_gc=out["p_gc"],
         n_failed=(~usable).sum(axis=1), weights=w, sample_d_min=d_min, sample_t_d_min=t_d,
         sample_v_rel=v_rel, sample_r_min=r_min, sample_t_r_min=cols["tr"].reshape(n, k),
         sample_pass=passes, usable=usable, meta=meta)

@@ -1,6 +1,6 @@
 """Back-integration of candidate stars: did each one come from the Galactic Centre, and when?
 
-Every error sample of every star (:func:`swerve.catalog.draw_samples`) is integrated
+Every error sample of every star (:func:`swerve.measurement.draw_samples`) is integrated
 *backward* in a static Galaxy (:func:`swerve.orbits.integrate`), and per star the weighted
 fraction of paths that pass within a radius R of the Galactic Centre is reported, with the
 flight time and implied launch speed of those paths.
@@ -36,13 +36,47 @@ Method
   is kept (its ``r_min`` and ``t_r_min`` were located before the failure); any other failed
   path is left out of every estimate and counted in ``n_failed``.
 
+With the LMC (``lmc=...``, ``swerve trace --lmc``)
+-----------------------------------------------
+* **Galaxy.** The paths are integrated in the LMC-perturbed Galaxy of :mod:`swerve.orbits_lmc`:
+  the static Galaxy plus the LMC, a Hernquist sphere moving on its past orbit (dynamical
+  friction) with the Milky Way's reflex (:func:`swerve.galaxy.lmc.lmc_orbit`, from the present
+  state under the samples' solar parameters, back to ``-max_time``). Every Galactic-Centre
+  column then comes from this integration too.
+* **Second origin.** A path *passes the LMC* when its closest approach to the LMC's moving
+  centre (located between steps on the dense output) is below ``lmc_radius`` (default
+  :data:`DEFAULT_LMC_RADIUS`, 5 kpc: a choice, stated in :mod:`swerve.orbits_lmc`). Per star:
+  ``p_lmc``, the closest approach to the LMC's centre ``d_lmc_min`` and the time since it
+  ``t_lmc_min`` (weighted medians over all usable paths), and over the passing paths the flight
+  time since the closest approach ``t_flight_lmc`` and the speed relative to the LMC's centre
+  there ``v_eject_lmc`` (medians and 16-84% intervals).
+* **Stopping rules.** As above, a path stops right after its first (most recent) passage
+  within ``radius`` of the Galactic Centre, or at ``max_time``; a passage by the LMC does not
+  stop it, so a path that flew through the LMC's region after a Galactic-Centre ejection
+  counts for both origins (``p_origin + p_lmc`` can exceed 1: such a star is consistent with
+  either). In addition (``early_stop``, default on) a path stops once it recedes from both
+  centres while unbound from both (:mod:`swerve.orbits_lmc`, "Early stops"): most paths that
+  would run to ``max_time`` in the static trace end far earlier here. Bound paths are never
+  cut short. ``r_min``, ``d_lmc_min`` and ``t_lmc_min`` are those of the integrated part of
+  each path. A star now inside the LMC's sphere passes it trivially (its closest approach may
+  be the present).
+* **Launch speed.** The energy is not conserved in a time-dependent potential, but
+  ``J = E - int dPhi/dt dt`` is (:mod:`swerve.orbits_lmc`), and the engine keeps the integral
+  at the closest approach to the Galactic Centre, ``W``; so
+  ``v_launch^2 = 2 [E(0) + W - Phi(r_launch n, t_r_min)]`` with ``Phi`` the potential of the
+  Galactic Centre's frame at the time of the closest approach (static Galaxy, the LMC, and the
+  frame's acceleration term) and ``n`` the unit vector of the present position, as above.
+  Without the LMC's mass this is the static formula.
+* **Unbound** stays a statement about the present: speed above the static Galaxy's local
+  escape speed.
+
 Weights
 -------
 The samples are draws from each star's measurement distribution, read as a distribution of
 its true observables. For expectations over the star's posterior of its true observables
 (distance, proper motions, line-of-sight velocity), with priors flat in the observables
 except for the distance prior, the importance weights are the distance-prior weights
-``exp(log_prior)`` of :class:`swerve.catalog.ErrorSamples`, normalised per star: 1 for
+``exp(log_prior)`` of :class:`swerve.measurement.ErrorSamples`, normalised per star: 1 for
 stars with a distance measurement and under ``distance_prior="none"``; for parallax stars
 under a volume prior, the ratio of the parallax likelihood x distance prior to the density
 the parallax was drawn from (nearly even: that density is tabulated from the posterior
@@ -75,18 +109,26 @@ from .orbits import (
     OrbitFailureWarning,
     integrate,
 )
+from .orbits_lmc import (
+    DEFAULT_LMC_RADIUS,
+    frame_potential,
+    integrate_lmc,
+    lmc_origin_stats,
+    stop_names,
+)
 from .units import to_internal
 
 __all__ = [
     "DEFAULT_CHUNK",
     "DEFAULT_LAUNCH_RADIUS",
+    "DEFAULT_LMC_RADIUS",
     "DEFAULT_MAX_TIME",
     "DEFAULT_RADIUS",
+    "LMC_TRACE_COLUMNS",
     "TRACE_COLUMNS",
     "TraceResult",
     "trace_catalog",
     "trace_orbits",
-    "trace_plot",
     "trace_samples",
     "trace_summary",
     "weighted_quantile",
@@ -122,6 +164,23 @@ TRACE_COLUMNS: dict[str, tuple[str, str]] = {
     "r_min": ("kpc", "closest approach to the Galactic Centre (first passage or within max_time), weighted median"),
     "ess": ("", "Kish effective sample size of the weights"),
     "n_failed": ("", "samples whose integration failed (left out)"),
+}
+
+#: Columns added with the LMC (``lmc=...``, ``swerve trace --lmc``), after ``r_min``:
+#: name -> (unit, description).
+LMC_TRACE_COLUMNS: dict[str, tuple[str, str]] = {
+    "p_lmc": ("", "weighted fraction of the paths that pass within the LMC radius of the LMC's centre"),
+    "n_pass_lmc": ("", "number of samples whose path passes within the LMC radius"),
+    "d_lmc_min": ("kpc", "closest approach to the LMC's centre (integrated part of each path), weighted median"),
+    "t_lmc_min": ("Myr", "time since the closest approach to the LMC's centre, weighted median over all paths"),
+    "t_flight_lmc": ("Myr", "time since the closest approach to the LMC's centre of the paths passing it, "
+                            "weighted median"),
+    "t_flight_lmc_lo": ("Myr", "16th percentile of t_flight_lmc"),
+    "t_flight_lmc_hi": ("Myr", "84th percentile of t_flight_lmc"),
+    "v_eject_lmc": ("km / s", "speed relative to the LMC's centre at its closest approach, of the paths "
+                              "passing it, weighted median"),
+    "v_eject_lmc_lo": ("km / s", "16th percentile of v_eject_lmc"),
+    "v_eject_lmc_hi": ("km / s", "84th percentile of v_eject_lmc"),
 }
 
 
@@ -215,6 +274,17 @@ class TraceResult:
     sample_unbound, sample_pass, usable : bool arrays (n, k)
     meta : dict
         Settings, the Galaxy, and provenance (JSON-safe).
+    p_lmc, n_pass_lmc, d_lmc_min, t_lmc_min : arrays (n,), or None without the LMC
+        The LMC origin (module docstring, "With the LMC"; columns :data:`LMC_TRACE_COLUMNS`).
+    t_flight_lmc, t_flight_lmc_lo, t_flight_lmc_hi, v_eject_lmc, v_eject_lmc_lo, v_eject_lmc_hi : arrays (n,) or None
+    sample_d_lmc_min, sample_t_lmc_min, sample_v_rel_lmc : arrays (n, k) or None
+        Closest approach to the LMC's centre (kpc), the time since it (Myr) and the speed
+        relative to the LMC's centre there (km/s).
+    sample_pass_lmc : bool array (n, k) or None
+    sample_stop_reason : int array (n, k) or None
+        Why each path stopped (:data:`swerve.orbits_lmc.stop_names`; LMC runs only).
+    samples : swerve.measurement.ErrorSamples or None
+        The error samples traced (set by :func:`trace_samples` and :func:`trace_catalog`).
     """
 
     ids: np.ndarray
@@ -243,21 +313,55 @@ class TraceResult:
     sample_pass: np.ndarray
     usable: np.ndarray
     meta: dict = field(default_factory=dict)
+    p_lmc: np.ndarray | None = None
+    n_pass_lmc: np.ndarray | None = None
+    d_lmc_min: np.ndarray | None = None
+    t_lmc_min: np.ndarray | None = None
+    t_flight_lmc: np.ndarray | None = None
+    t_flight_lmc_lo: np.ndarray | None = None
+    t_flight_lmc_hi: np.ndarray | None = None
+    v_eject_lmc: np.ndarray | None = None
+    v_eject_lmc_lo: np.ndarray | None = None
+    v_eject_lmc_hi: np.ndarray | None = None
+    sample_d_lmc_min: np.ndarray | None = None
+    sample_t_lmc_min: np.ndarray | None = None
+    sample_v_rel_lmc: np.ndarray | None = None
+    sample_pass_lmc: np.ndarray | None = None
+    sample_stop_reason: np.ndarray | None = None
+    samples: object = None
 
     @property
     def n(self) -> int:
         """Number of stars."""
         return int(self.p_origin.shape[0])
 
+    @property
+    def has_lmc(self) -> bool:
+        """Whether the paths were traced with the LMC (and the LMC columns are filled)."""
+        return self.p_lmc is not None
+
+    @property
+    def columns(self) -> dict[str, tuple[str, str]]:
+        """The table's columns, name -> (unit, description): :data:`TRACE_COLUMNS`, with
+        :data:`LMC_TRACE_COLUMNS` after ``r_min`` when traced with the LMC."""
+        if not self.has_lmc:
+            return dict(TRACE_COLUMNS)
+        out = {}
+        for name, spec in TRACE_COLUMNS.items():
+            out[name] = spec
+            if name == "r_min":
+                out.update(LMC_TRACE_COLUMNS)
+        return out
+
     def to_table(self):
         """The per-star results as an :class:`astropy.table.Table` with units, descriptions
-        and :attr:`meta` (the columns of :data:`TRACE_COLUMNS`)."""
+        and :attr:`meta` (the columns of :attr:`columns`)."""
         from astropy.table import Table
 
         t = Table()
         n = self.n
         nan = np.full(n, np.nan)
-        for name, (unit, desc) in TRACE_COLUMNS.items():
+        for name, (unit, desc) in self.columns.items():
             value = getattr(self, name if name != "id" else "ids")
             if value is None:
                 value = nan
@@ -279,9 +383,27 @@ def _jsonable(obj):
 # tracing
 
 
+def _lmc_track(galaxy, lmc, max_time, solar):
+    """The LMC track of a trace: ``lmc`` True (the default LMC), an LMC or an LMCTrack."""
+    from .galaxy.lmc import LMC, LMCTrack, lmc_orbit
+
+    if isinstance(lmc, LMCTrack):
+        if lmc.t_min > -max_time + 1e-9:
+            raise ValueError(
+                f"lmc: the LMC track reaches back to {lmc.t_min:g} Myr, short of max_time {max_time:g} Myr; "
+                f"make it with lmc_orbit(..., t_min=-{max_time:g})")
+        return lmc
+    if lmc is True:
+        lmc = LMC()
+    if not isinstance(lmc, LMC):
+        raise ValueError(f"lmc: expected None, True, a swerve.galaxy.lmc.LMC or an LMCTrack, got {lmc!r}")
+    return lmc_orbit(galaxy, lmc, t_min=-max_time, solar=solar)
+
+
 def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_time=DEFAULT_MAX_TIME,
                  launch_radius=DEFAULT_LAUNCH_RADIUS, rtol=DEFAULT_RTOL, atol=DEFAULT_ATOL,
-                 chunk=DEFAULT_CHUNK, progress=None, ids=None) -> TraceResult:
+                 chunk=DEFAULT_CHUNK, progress=None, ids=None, lmc=None, lmc_radius=DEFAULT_LMC_RADIUS,
+                 early_stop=True, solar=None) -> TraceResult:
     """Trace samples of stars backward in a Galaxy (plain arrays; see the module docstring).
 
     Parameters
@@ -309,11 +431,36 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
         Called as ``progress(done, total)`` (orbits) after each batch.
     ids : array (n,), optional
         Star identifiers (default 0..n-1).
+    lmc : None, bool, swerve.galaxy.lmc.LMC or swerve.galaxy.lmc.LMCTrack
+        Trace in the LMC-perturbed Galaxy and report the LMC as a second origin (module
+        docstring, "With the LMC"): True for the default LMC (``LMC()``, m_lmc 1.38e11 Msun), an
+        :class:`~swerve.galaxy.lmc.LMC` for other values (its track made here from the present
+        back to ``-max_time``), or a track already made (reaching ``-max_time``). None or False
+        (default): the static Galaxy.
+    lmc_radius : float or Quantity ['length']
+        A path passes the LMC when its closest approach to the LMC's centre is below this, kpc
+        (default :data:`DEFAULT_LMC_RADIUS`). Used with ``lmc`` only.
+    early_stop : bool
+        With ``lmc``: stop a path once it recedes from both centres, unbound from both
+        (:mod:`swerve.orbits_lmc`, "Early stops"). Default True; False integrates every path
+        that passes neither origin for the full ``max_time`` (as the static trace does).
+    solar : None, str, dict or SolarParameters
+        Solar parameters of the LMC's present state when its track is made here (default
+        :data:`swerve.frames.DEFAULT_SOLAR`); :func:`trace_samples` passes the samples' own.
 
     Returns
     -------
     TraceResult
         With ``ra``, ``dec`` and ``distance`` None.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from swerve.galaxy import Galaxy
+    >>> x = np.array([[[10.0, 5.0, 20.0]]])
+    >>> res = trace_orbits(Galaxy.default(), x, 900.0 * x / np.linalg.norm(x), lmc=True, max_time=200.0)
+    >>> float(res.p_origin[0]), float(res.p_lmc[0])
+    (1.0, 0.0)
     """
     pos = np.asarray(to_internal(pos, "length", "pos"), dtype=float)
     vel = np.asarray(to_internal(vel, "velocity", "vel"), dtype=float)
@@ -341,6 +488,10 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
     ids = np.arange(n) if ids is None else np.asarray(ids)
     if ids.shape != (n,):
         raise ValueError(f"ids: expected {n} identifiers, got shape {ids.shape}")
+    track = None
+    if lmc is not None and lmc is not False:
+        lmc_radius = _positive(lmc_radius, "length", "lmc_radius")
+        track = _lmc_track(galaxy, lmc, max_time, solar)
 
     flat_pos = pos.reshape(-1, 3)
     flat_vel = vel.reshape(-1, 3)
@@ -349,10 +500,23 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
     t_min = np.empty(m)
     r_max = np.empty(m)
     status = np.empty(m, dtype=np.int64)
+    if track is not None:
+        lmc_cols = {name: np.empty(m) for name in ("d", "td", "vr", "w")}
+        stop_reason = np.empty(m, dtype=np.int64)
     for start in range(0, m, int(chunk)):
         stop = min(start + int(chunk), m)
-        res = integrate(galaxy, flat_pos[start:stop], flat_vel[start:stop], -max_time, r_stop=radius,
-                        rtol=rtol, atol=atol, check_density=False, on_failure="ignore")
+        if track is None:
+            res = integrate(galaxy, flat_pos[start:stop], flat_vel[start:stop], -max_time, r_stop=radius,
+                            rtol=rtol, atol=atol, check_density=False, on_failure="ignore")
+        else:
+            res = integrate_lmc(galaxy, track, flat_pos[start:stop], flat_vel[start:stop], 0.0, -max_time,
+                                r_stop=radius, no_return=bool(early_stop), rtol=rtol,
+                                atol=atol, on_failure="ignore")
+            lmc_cols["d"][start:stop] = res.d_lmc_min
+            lmc_cols["td"][start:stop] = res.t_d_lmc_min
+            lmc_cols["vr"][start:stop] = res.v_rel_lmc
+            lmc_cols["w"][start:stop] = res.w_r_min
+            stop_reason[start:stop] = res.stop_reason
         r_min[start:stop] = res.r_min
         t_min[start:stop] = res.t_r_min
         r_max[start:stop] = res.r_max
@@ -378,10 +542,18 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
     r_now = np.linalg.norm(flat_pos, axis=1)
     unit = np.where(r_now[:, None] > 0, flat_pos / np.where(r_now > 0, r_now, 1.0)[:, None],
                     np.array([1.0, 0.0, 0.0]))
-    phi_launch = galaxy.potential(launch_radius * unit)
     speed2 = np.sum(flat_vel**2, axis=1)
-    with np.errstate(invalid="ignore"):
-        v_launch = np.sqrt(speed2 + 2.0 * (phi - phi_launch)).reshape(n, k)
+    if track is None:
+        phi_launch = galaxy.potential(launch_radius * unit)
+        with np.errstate(invalid="ignore"):
+            v_launch = np.sqrt(speed2 + 2.0 * (phi - phi_launch)).reshape(n, k)
+    else:
+        # v^2/2 + Phi_frame(x, t) - W is conserved (swerve.orbits_lmc): at the closest approach
+        e0 = 0.5 * speed2 + frame_potential(galaxy, track, flat_pos, 0.0)
+        t_at = np.clip(np.nan_to_num(t_min, nan=0.0), track.t_min, 0.0)
+        phi_launch = frame_potential(galaxy, track, launch_radius * unit, t_at)
+        with np.errstate(invalid="ignore"):
+            v_launch = np.sqrt(2.0 * (e0 + lmc_cols["w"] - phi_launch)).reshape(n, k)
     unbound = (speed2 > np.maximum(-2.0 * phi, 0.0)).reshape(n, k)
     r_now = r_now.reshape(n, k)
     speed = np.sqrt(speed2).reshape(n, k)
@@ -427,6 +599,27 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
         "n_reached_centre_after_failure": int(reached_centre.sum()),
         "quantiles": "weighted, Hazen definition; *_lo/*_hi are the 16th/84th percentiles",
     }
+    lmc_out = {}
+    if track is not None:
+        shape = (n, k)
+        stats = lmc_origin_stats(w, usable, lmc_cols["d"].reshape(shape), lmc_cols["td"].reshape(shape),
+                                 lmc_cols["vr"].reshape(shape), lmc_radius)
+        lmc_out = {name: stats[name] for name in LMC_TRACE_COLUMNS}
+        lmc_out.update(sample_d_lmc_min=lmc_cols["d"].reshape(shape), sample_t_lmc_min=-lmc_cols["td"].reshape(shape),
+                       sample_v_rel_lmc=lmc_cols["vr"].reshape(shape), sample_pass_lmc=stats["sample_pass"],
+                       sample_stop_reason=stop_reason.reshape(shape))
+        track_meta = track.to_dict()
+        if track_meta.get("galaxy") == meta["galaxy"]:
+            track_meta["galaxy"] = "the traced Galaxy (meta galaxy)"
+        meta.update({
+            "lmc": track_meta,
+            "lmc_radius_kpc": lmc_radius,
+            "early_stop": bool(early_stop),
+            "stop_reasons": {stop_names[c]: int(np.sum(stop_reason == c)) for c in sorted(stop_names)},
+            "lmc_model": "LMC-perturbed Galaxy of swerve.orbits_lmc: a moving Hernquist LMC with dynamical "
+                         "friction, the Milky Way's reflex (rigid Milky Way); unbound = above the static "
+                         "Galaxy's escape speed",
+        })
     return TraceResult(
         ids=ids, ra=None, dec=None, distance=None,
         r_gc=out["r_gc"], v_gc=out["v_gc"], p_origin=out["p_origin"], n_pass=passes.sum(axis=1),
@@ -434,12 +627,12 @@ def trace_orbits(galaxy, pos, vel, weights=None, *, radius=DEFAULT_RADIUS, max_t
         v_launch=out["v_launch"], v_launch_lo=out["v_launch_lo"], v_launch_hi=out["v_launch_hi"],
         p_unbound=out["p_unbound"], r_min=out["r_min"], ess=out["ess"], n_failed=n_failed,
         weights=w, sample_r_min=r_min, sample_t_flight=t_flight, sample_v_launch=v_launch,
-        sample_unbound=unbound, sample_pass=passes, usable=usable, meta=meta,
+        sample_unbound=unbound, sample_pass=passes, usable=usable, meta=meta, **lmc_out,
     )
 
 
 def trace_samples(galaxy, samples, **kwargs) -> TraceResult:
-    """Trace the error samples of a catalog (:func:`swerve.catalog.draw_samples`) backward.
+    """Trace the error samples of a catalog (:func:`swerve.measurement.draw_samples`) backward.
 
     The weights are the distance-prior weights ``exp(samples.log_prior)``, normalised per
     star (module docstring, "Weights"). Keyword arguments as :func:`trace_orbits`.
@@ -447,21 +640,26 @@ def trace_samples(galaxy, samples, **kwargs) -> TraceResult:
     Returns
     -------
     TraceResult
-        With ``ra``, ``dec`` and ``distance`` (weighted median of the sampled heliocentric
-        distances) filled in, and the solar parameters and distance prior in ``meta``.
+        With ``ra``, ``dec``, ``distance`` (weighted median of the sampled heliocentric
+        distances) and ``samples`` filled in, and the solar parameters and distance prior in
+        ``meta``. With ``lmc``, the LMC's present state uses the samples' solar parameters
+        unless ``solar`` is given.
     """
-    from .catalog import ErrorSamples
+    from .measurement import ErrorSamples
 
     if not isinstance(samples, ErrorSamples):
-        raise ValueError(f"samples: expected swerve.catalog.ErrorSamples, got {type(samples).__name__}")
+        raise ValueError(f"samples: expected swerve.measurement.ErrorSamples, got {type(samples).__name__}")
     lp = samples.log_prior - samples.log_prior.max(axis=1, keepdims=True)
     weights = np.exp(lp)
+    if kwargs.get("lmc") is not None and kwargs.get("lmc") is not False:
+        kwargs.setdefault("solar", samples.settings.get("solar"))
     res = trace_orbits(galaxy, samples.position, samples.velocity, weights, ids=samples.ids, **kwargs)
+    res.samples = samples
     res.ra = np.asarray(samples.ra, dtype=float)
     res.dec = np.asarray(samples.dec, dtype=float)
     res.distance = np.array([_wmedian(samples.distance[i][res.usable[i]], res.weights[i][res.usable[i]])
                              if res.usable[i].any() else np.nan for i in range(samples.n)])
-    res.meta["weights"] = ("distance-prior weights exp(log_prior) of swerve.catalog.draw_samples, "
+    res.meta["weights"] = ("distance-prior weights exp(log_prior) of swerve.measurement.draw_samples, "
                            "normalised per star (no velocity Jacobian)")
     res.meta["distance_prior"] = samples.distance_prior
     res.meta["samples_settings"] = samples.settings
@@ -483,13 +681,15 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
     rng : numpy.random.Generator or int
         The only source of randomness (an int is a seed, recorded in ``meta``).
     distance_prior, solar, length_scale, max_distance
-        As :func:`swerve.catalog.draw_samples`.
+        As :func:`swerve.measurement.draw_samples`.
     **kwargs
-        As :func:`trace_orbits` (radius, max_time, launch_radius, rtol, atol, chunk, progress).
+        As :func:`trace_orbits` (radius, max_time, launch_radius, rtol, atol, chunk, progress,
+        lmc, lmc_radius, early_stop).
 
     Returns
     -------
     TraceResult
+        With the error samples in ``samples``.
 
     Examples
     --------
@@ -497,8 +697,8 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
     >>> res = trace_catalog(read_catalog("examples/demo.ecsv"), k=50, rng=1)  # doctest: +SKIP
     >>> res.to_table()["p_origin"]  # doctest: +SKIP
     """
-    from .catalog import draw_samples
     from .galaxy import Galaxy
+    from .measurement import draw_samples
     from .rng import as_generator
 
     rng, seed = as_generator(rng)
@@ -535,55 +735,37 @@ def write_trace_table(result: TraceResult, path) -> None:
     _atomic(path, lambda tmp: table.write(tmp, format="ascii.ecsv", overwrite=True))
 
 
-def trace_plot(result: TraceResult, path) -> None:
-    """Flight time against heliocentric distance, coloured by the origin probability.
-
-    Stars with at least one passing path are drawn with their 16-84% flight-time interval;
-    the number of stars with none is written in the corner. Matplotlib, Agg backend; the
-    format comes from the extension of ``path``, which is written atomically.
-    """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    d = result.distance if result.distance is not None else result.r_gc
-    has = np.isfinite(result.t_flight)
-    fig, ax = plt.subplots(figsize=(6.4, 4.6), constrained_layout=True)
-    if has.any():
-        t = result.t_flight[has]
-        yerr = [t - result.t_flight_lo[has], result.t_flight_hi[has] - t]
-        ax.errorbar(d[has], t, yerr=yerr, fmt="none", ecolor="0.6", elinewidth=0.7, zorder=1)
-        sc = ax.scatter(d[has], t, c=result.p_origin[has], cmap="viridis", vmin=0.0, vmax=1.0, s=22,
-                        edgecolors="k", linewidths=0.3, zorder=2)
-        fig.colorbar(sc, ax=ax, label=f"P(path within {result.meta.get('radius_kpc', DEFAULT_RADIUS):g} kpc of the GC)")
-    n_none = int(np.sum(~has))
-    ax.text(0.02, 0.97, f"{int(has.sum())} stars with a passing path; {n_none} with none (not shown)",
-            transform=ax.transAxes, va="top", fontsize=8)
-    ax.set_xlabel("heliocentric distance [kpc]" if result.distance is not None else "Galactocentric radius [kpc]")
-    ax.set_ylabel("flight time since closest approach [Myr]")
-    ax.grid(alpha=0.3)
-    galaxy = result.meta.get("galaxy", {}).get("name", "")
-    ax.set_title(f"swerve trace ({galaxy}, {result.meta.get('samples_per_star', '?')} samples per star)", fontsize=9)
-    _atomic(path, lambda tmp: fig.savefig(tmp, dpi=120))
-    plt.close(fig)
-
-
 def trace_summary(result: TraceResult, top: int = 20) -> str:
-    """A terminal summary: the ``top`` stars by origin probability, then counts."""
+    """A terminal summary: the ``top`` stars by origin probability (Galactic Centre, plus the
+    LMC when traced with it), then counts."""
     if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 0:
         raise ValueError(f"top: expected a non-negative integer, got {top!r}")
     meta = result.meta
-    lines = [(
-        f"Traced {result.n} stars x {meta.get('samples_per_star')} samples back for up to "
-        f"{meta.get('max_time_myr'):g} Myr in Galaxy {meta.get('galaxy', {}).get('name')}; "
-        f"origin: a path within {meta.get('radius_kpc'):g} kpc of the Galactic Centre."
-    )]
-    order = np.argsort(-np.nan_to_num(result.p_origin, nan=-1.0), kind="stable")
+    lmc = result.has_lmc
+    if lmc:
+        m_lmc = meta.get("lmc", {}).get("lmc", {}).get("m_lmc", float("nan"))
+        lines = [(
+            f"Traced {result.n} stars x {meta.get('samples_per_star')} samples back for up to "
+            f"{meta.get('max_time_myr'):g} Myr in Galaxy {meta.get('galaxy', {}).get('name')} perturbed by the "
+            f"LMC (m_lmc {m_lmc:.3g} Msun, on its past orbit with the Milky Way's reflex); origins: a path within "
+            f"{meta.get('radius_kpc'):g} kpc of the Galactic Centre (P_origin) or within "
+            f"{meta.get('lmc_radius_kpc'):g} kpc of the LMC's centre (P_LMC)."
+        )]
+    else:
+        lines = [(
+            f"Traced {result.n} stars x {meta.get('samples_per_star')} samples back for up to "
+            f"{meta.get('max_time_myr'):g} Myr in Galaxy {meta.get('galaxy', {}).get('name')}; "
+            f"origin: a path within {meta.get('radius_kpc'):g} kpc of the Galactic Centre."
+        )]
+    key = np.nan_to_num(result.p_origin, nan=-1.0)
+    if lmc:
+        key = key + np.nan_to_num(result.p_lmc, nan=0.0)
+    order = np.argsort(-key, kind="stable")
     shown = order[: int(top)]
     if len(shown):
         lines.append(f"  {'id':<14} {'d [kpc]':>8} {'P_origin':>8} {'t_flight [Myr]':>22} "
-                     f"{'v_launch [km/s]':>22} {'P_unbound':>9} {'r_min [kpc]':>11}")
+                     f"{'v_launch [km/s]':>22} {'P_unbound':>9} {'r_min [kpc]':>11}"
+                     + (f" {'P_LMC':>6} {'t_flight_LMC [Myr]':>22} {'d_LMC [kpc]':>11}" if lmc else ""))
 
         def _iv(m, lo, hi, fmt):
             if not np.isfinite(m):
@@ -596,13 +778,23 @@ def trace_summary(result: TraceResult, top: int = 20) -> str:
                 f"  {str(result.ids[i])[:14]:<14} {d:8.2f} {result.p_origin[i]:8.3f} "
                 f"{_iv(result.t_flight[i], result.t_flight_lo[i], result.t_flight_hi[i], '.1f'):>22} "
                 f"{_iv(result.v_launch[i], result.v_launch_lo[i], result.v_launch_hi[i], '.0f'):>22} "
-                f"{result.p_unbound[i]:9.3f} {result.r_min[i]:11.2f}")
+                f"{result.p_unbound[i]:9.3f} {result.r_min[i]:11.2f}"
+                + (f" {result.p_lmc[i]:6.3f} "
+                   f"{_iv(result.t_flight_lmc[i], result.t_flight_lmc_lo[i], result.t_flight_lmc_hi[i], '.1f'):>22} "
+                   f"{result.d_lmc_min[i]:11.2f}" if lmc else ""))
         if result.n > len(shown):
             lines.append(f"  ... {result.n - len(shown)} more stars in the table")
     p = np.nan_to_num(result.p_origin)
     lines.append(
         f"  P_origin > 0.5: {int(np.sum(p > 0.5))} stars; > 0.1: {int(np.sum(p > 0.1))}; = 0: "
         f"{int(np.sum(p == 0))}.  P_unbound > 0.5: {int(np.sum(np.nan_to_num(result.p_unbound) > 0.5))} stars.")
+    if lmc:
+        pl = np.nan_to_num(result.p_lmc)
+        stops = meta.get("stop_reasons", {})
+        lines.append(
+            f"  P_LMC > 0.5: {int(np.sum(pl > 0.5))} stars; > 0.1: {int(np.sum(pl > 0.1))}; = 0: "
+            f"{int(np.sum(pl == 0))}.  Paths stopped: "
+            + "; ".join(f"{name} {count}" for name, count in stops.items()) + ".")
     n_failed = int(np.sum(result.n_failed))
     if n_failed:
         lines.append(f"  {n_failed} paths failed to integrate (left out; column n_failed).")

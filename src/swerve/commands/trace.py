@@ -18,11 +18,13 @@ from ._common import (
 
 
 def add_parser(sub):
-    from ..catalog import DISTANCE_PRIORS
+    from ..measurement import DISTANCE_PRIORS
     from ..trace import (
         DEFAULT_LAUNCH_RADIUS,
+        DEFAULT_LMC_RADIUS,
         DEFAULT_MAX_TIME,
         DEFAULT_RADIUS,
+        LMC_TRACE_COLUMNS,
         TRACE_COLUMNS,
     )
 
@@ -38,10 +40,17 @@ def add_parser(sub):
             "--launch-radius (energy conservation), the probability of being unbound (speed above the local "
             "escape speed) and the median closest approach. Samples are weighted by the distance prior only. "
             "Writes an ECSV table (units; meta with the Galaxy, solar parameters, K, seed, version) and a "
-            "plot of flight time against distance coloured by p_origin."
+            "plot of flight time against distance coloured by p_origin. With --lmc the paths are integrated in "
+            "the Galaxy perturbed by the Large Magellanic Cloud (a moving Hernquist sphere on its past orbit, "
+            "with dynamical friction and the Milky Way's reflex), every column comes from that integration, "
+            "and the LMC is reported as a second origin: p_lmc (a path within --lmc-radius of the LMC's "
+            "centre), the closest approach to it and its time, and the flight time and speed relative to "
+            "the LMC of the passing paths; the plot gets a second panel."
         ),
         epilog="Table columns: " + ", ".join(
             f"{name} [{unit.replace(' ', '')}]" if unit else name for name, (unit, _) in TRACE_COLUMNS.items()
+        ) + "; with --lmc also " + ", ".join(
+            f"{name} [{unit.replace(' ', '')}]" if unit else name for name, (unit, _) in LMC_TRACE_COLUMNS.items()
         ) + " (*_lo, *_hi: 16th and 84th percentiles). Exit codes: 0 done, 1 bad input (every catalog "
             "problem is listed, nothing is written), 2 bad usage.",
     )
@@ -63,6 +72,16 @@ def add_parser(sub):
                         "--radius (default: %(default)s Myr)")
     p.add_argument("--launch-radius", type=float, default=DEFAULT_LAUNCH_RADIUS, metavar="KPC",
                    help="radius at which the implied launch speed is evaluated (default: %(default)s kpc = 3 pc)")
+    p.add_argument("--lmc", action="store_true",
+                   help="trace in the Galaxy perturbed by the Large Magellanic Cloud (its past orbit with dynamical "
+                        "friction and the Milky Way's reflex) and report the LMC as a second origin (p_lmc); paths "
+                        "that recede, unbound, from both the Galactic Centre and the LMC stop early")
+    p.add_argument("--lmc-mass", type=float, default=None, metavar="MSUN",
+                   help="LMC mass for --lmc (default 1.38e11 Msun, Erkal et al. 2019; range 0-2.5e11); implies --lmc")
+    p.add_argument("--lmc-radius", type=float, default=None, metavar="KPC",
+                   help=f"a path passing within this distance of the LMC's centre counts as an origin there "
+                        f"(default: {DEFAULT_LMC_RADIUS:g} kpc, about three scale lengths of the LMC's disk); "
+                        "implies --lmc")
     p.add_argument("--out", metavar="TABLE.ecsv", default=None,
                    help="per-star table (default: trace-<catalog name>.ecsv in the current folder)")
     p.add_argument("--plot", metavar="FILE.png", default=None,
@@ -99,14 +118,24 @@ def run(args) -> int:
     from ..frames import resolve_solar
     from ..galaxy import Galaxy
     from ..galaxy.model import DEFAULT_GALAXY
-    from ..trace import trace_catalog, trace_plot, trace_summary, write_trace_table
+    from ..plots import trace_plot
+    from ..trace import DEFAULT_LMC_RADIUS, trace_catalog, trace_summary, write_trace_table
 
     if args.samples < 1:
         raise CommandError(f"--samples {args.samples}: expected a positive number of samples per star")
     for option, value in (("--radius", args.radius), ("--max-time", args.max_time),
-                          ("--launch-radius", args.launch_radius), ("--length-scale", args.length_scale)):
+                          ("--launch-radius", args.launch_radius), ("--length-scale", args.length_scale),
+                          ("--lmc-radius", DEFAULT_LMC_RADIUS if args.lmc_radius is None else args.lmc_radius)):
         if not value > 0 or value == float("inf"):
             raise CommandError(f"{option} {value}: expected a positive number")
+    lmc = None
+    if args.lmc or args.lmc_mass is not None or args.lmc_radius is not None:
+        from ..galaxy.lmc import LMC
+
+        try:
+            lmc = LMC() if args.lmc_mass is None else LMC(m_lmc=args.lmc_mass)
+        except ValueError as exc:
+            raise CommandError(f"--lmc-mass {args.lmc_mass:g}: {exc}") from None
     if args.seed < 0:
         raise CommandError(f"--seed {args.seed}: expected a non-negative integer")
     if args.top < 0:
@@ -131,7 +160,7 @@ def run(args) -> int:
         if len(problems) > 1:
             print(f"swerve trace: {len(problems)} problems; nothing written", file=sys.stderr)
         return EXIT_ERROR
-    from ..catalog import distance_warning
+    from ..measurement import distance_warning
 
     for hint in catalog.hints + (distance_warning(catalog, args.distance_prior),):
         if hint:
@@ -144,9 +173,12 @@ def run(args) -> int:
         def progress(done, total):
             bar.update(done - bar.n)
 
+        lmc_options = {} if lmc is None else {
+            "lmc": lmc, "lmc_radius": DEFAULT_LMC_RADIUS if args.lmc_radius is None else args.lmc_radius}
         result = trace_catalog(catalog, galaxy, args.samples, args.seed, distance_prior=args.distance_prior,
                                solar=solar, length_scale=args.length_scale, radius=args.radius,
-                               max_time=args.max_time, launch_radius=args.launch_radius, progress=progress)
+                               max_time=args.max_time, launch_radius=args.launch_radius, progress=progress,
+                               **lmc_options)
     if catalog.problems:
         result.meta["dropped_problems"] = [str(problem) for problem in catalog.problems]
     write_trace_table(result, out)
