@@ -55,7 +55,31 @@ def test_heliocentric_cuts_agree_with_astropy(stars):
     np.testing.assert_array_equal(mask, expected)
 
 
+def test_vlos_cut_on_true_values_agrees_with_astropy(stars):
+    """vlos_min on true values (a training population) against astropy's heliocentric radial
+    velocity (frame 'v4.0' defaults), and the parts a mock splits it into."""
+    pos, vel = stars
+    sel = Selection(r_min=None, outgoing=False, vlos_min=150.0)
+    assert sel.needs_heliocentric and sel.has_measured_cuts
+    mask, removed = sel.apply(pos, vel, solar="v4.0", report=True)
+    gc = SkyCoord(
+        CartesianRepresentation(pos.T * u.kpc, differentials=CartesianDifferential(vel.T * u.km / u.s)),
+        frame=Galactocentric(),
+    )
+    rv = gc.icrs.radial_velocity.to_value(u.km / u.s)
+    np.testing.assert_array_equal(mask, rv >= 150.0)
+    assert removed["vlos_min"] == int(np.sum(rv < 150.0)) > 0
+    np.testing.assert_array_equal(sel.measured_mask(rv), rv >= 150.0)
+    assert sel.true_value_cuts() == Selection(r_min=None, outgoing=False)
+    assert not Selection(d_max=50.0, vlos_min=1.0).galactocentric().needs_heliocentric
+    assert Selection().measured_mask(np.array([-1e3, 1e3])).all()
+
+
 def test_round_trip_and_equality():
+    old = Selection().to_dict()
+    del old["vlos_min"]  # an emulator's selection written before the cut existed
+    assert Selection.from_dict(old) == Selection()
+    assert Selection.from_dict(Selection(vlos_min=400.0).to_dict()).vlos_min == 400.0
     sel = Selection(r_min=15.0, d_max=100.0, unbound=True)
     assert Selection.from_dict(sel.to_dict()) == sel
     assert Selection() != sel
@@ -78,6 +102,8 @@ def test_empty_selection_error(stars):
         ({"dec_min": -100.0}, "dec_min"),
         ({"outgoing": "yes"}, "outgoing"),
         ({"v_min": float("nan")}, "v_min"),
+        ({"vlos_min": "fast"}, "vlos_min: expected a number"),
+        ({"vlos_min": float("inf")}, "vlos_min: expected a finite"),
     ],
 )
 def test_bad_cuts(kwargs, fragment):

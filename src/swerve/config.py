@@ -240,6 +240,8 @@ def _check_scalar(value, base: str, key: Key, where: str, src: str, whole=None):
 
 
 def _check_value(value, key: Key, where: str, src: str):
+    if value is None and key.default is None:  # "unset" (TOML has no null; a JSON record of a filled config has)
+        return None
     if key.type == "table":
         if not isinstance(value, dict):
             raise ConfigError(f"{src}: {where} = {_fmt(value)} has the wrong type; expected a table")

@@ -10,7 +10,7 @@ density of its *true* velocity at its *true* position, marginalised over its mea
 
 * the position uncertainty (distance, from the parallax or a distance measurement) is
   marginalised by importance sampling over K distance samples per star
-  (:func:`swerve.catalog.draw_samples`), with their θ-independent weights (distance prior and
+  (:func:`swerve.measurement.draw_samples`), with their θ-independent weights (distance prior and
   the Jacobian ``J(d) = (κ d)²`` of the map from (pmra, pmdec, vlos) to velocity);
 * at each distance sample the velocity uncertainty is marginalised **analytically**: the
   measured proper motions (conditional on the sampled parallax, so that parallax–proper-motion
@@ -51,7 +51,57 @@ is one emulator prediction, one compiled loop (vectorised over blocks of 16 walk
 over those blocks and chunks of stars), and one small dense solve per walker.
 
 Stars outside the emulator's selection are never silently used: a star with less than half of
-its sample weight inside the cells, or moving inward (v_r < 0), is excluded and reported.
+its sample weight inside the cells, moving inward (v_r < 0), or (with ``vlos_min``) measured below
+the selection's line-of-sight velocity cut, is excluded and reported.
+
+Selection on measured velocities
+--------------------------------
+A survey that keeps the stars whose *measured* heliocentric line-of-sight velocity
+``y = vlos + e`` exceeds ``c`` (``[selection] vlos_min``; ``e ~ N(0, σ²)``, the star's vlos
+error) truncates each star's error distribution. With ``s = a·u + b`` the true vlos (a linear
+projection of the folded velocity: ``a`` the line of sight in the star's folded basis, ``b`` the
+Sun's velocity along it, ``-n̂·v_sun``) and ``f`` the cell's velocity density *without* the cut,
+the exact density of a kept star is
+
+    p(m | x, θ, kept) = (f ⊗ N_C)(m) 1[y ≥ c] / Z,    Z = ∫ f(u) Φ((s(u) - c) / σ) du,
+
+``N_C`` the star's measurement errors (``m``: its measured velocity; ``y`` a linear function of
+it). The emulator is trained with the cut on the **true** value (the training population has no
+errors), so it models ``g = f 1[s ≥ c] / F``, ``F = P_f(s ≥ c)``. Writing
+``f = F g + f 1[s < c]``:
+
+* ``Z = F + O(σ² f'(c))``: as many stars scatter into the selection as out of it, to first
+  order (``∫ f (Φ((s - c)/σ) - 1[s ≥ c]) ds = -σ² f'(c) / 2 + O(σ⁴)``);
+* the stars scattered in add ``(f 1[s < c] ⊗ N_C)(m) = (g ⊗ N_C)(m) F r(y)``, nonzero within a
+  few σ of the cut, with ``r(y) = Φ((c - y)/σ) / Φ((y - c)/σ)`` up to ``O(σ f'/f)``: a factor
+  that does not depend on θ to leading order.
+
+So ``log p = log (g ⊗ N_C)(m) + (terms free of θ) + O(σ²)``: **the plain likelihood of an
+emulator trained with the same cut on the true value is the truncated likelihood to first order
+in the vlos error**, at no cost per call. This is swerve's scheme: train with
+``[selection] vlos_min = c``, fit with ``Likelihood(..., vlos_min=c)`` (which checks the
+emulator's cut) and stars from ``prepare_stars(..., vlos_min=c)`` (which excludes stars measured
+below it). The term neglected is second order: near the cut the kept stars' vlos errors are
+biased upward by about ``σ² f(c) / F``, and the tangential errors correlated with them
+(regression ``κ`` of each tangential error on the vlos error, the line of sight's projection on
+``e_θ``, ``e_φ``: of order r_sun / d, with signs that cancel around the sky) shift a star's
+measured deflection by ``(κ - β) σ² f(c) / F`` (``β``: the cell's own regression on v_r).
+
+Two alternatives were measured and rejected (``benchmarks/observed_cut.py``, RESULTS.md
+"Selection on measured velocities"): dividing each star's density by ``P(y ≥ c | x, θ)``
+computed under the trained cell Gaussian convolved with the star's error counts the truncation
+twice (the cell model already holds the cut: under exact densities it keeps the stars scattered
+out but not those scattered in, an O(σ) error; under the cell Gaussian, fitted to a truncated
+population, its mass below ``c`` is of order one) and moved the launch slope by 3.4 posterior
+standard deviations at every vlos error tried (0.01-100 km/s); with an emulator trained
+*without* the cut the same normaliser would be exact only if the uncut cell distribution were
+Gaussian, and the v_r of hypervelocity stars spans 300-3000 km/s with the cut in its bulk (slope
+off by 5-6 and q_z by 3-5 standard deviations). With the plain likelihood and the emulator
+trained with the cut, 43 of 48 95% intervals held the truth, and the medians at σ = 10 and 100
+km/s moved by under half a standard deviation from those of a cut on the true value. A catalog
+fitted with an emulator unaware of the cut is biased far more (slope at the bound of its range):
+:func:`swerve.selection.check_declared` refuses a catalog whose declared selection differs from
+the emulator's.
 """
 
 from __future__ import annotations
@@ -301,14 +351,14 @@ def _velocity_gradient(catalog, samples, solar):
 
 def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: float = 0.5,
                   r_min: float | None = None, allow_empty: bool = False,
-                  stratum_variance: bool = True) -> StarTerms:
+                  stratum_variance: bool = True, vlos_min: float | None = None) -> StarTerms:
     """The θ-independent terms of every usable star; stars outside the selection are excluded
     and listed in ``StarTerms.excluded`` (never silently used).
 
     Parameters
     ----------
     catalog : swerve.catalog.Catalog
-    samples : swerve.catalog.ErrorSamples
+    samples : swerve.measurement.ErrorSamples
         Distance samples of the same stars (``draw_samples(catalog, k, rng, ...)``).
     spec : SummarySpec
         The emulator's summary definition (its cells).
@@ -331,6 +381,11 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
         whichever sample lands closest (measured: fits of 100-star mocks with 10% distances and
         precise proper motions ran into the corners of the domain). With it, the sum is a
         smooth mixture that tends to the exact marginal as K grows.
+    vlos_min : float, optional
+        The selection's cut on the measured heliocentric line-of-sight velocity, km/s (the
+        emulator's ``[selection] vlos_min``): a star whose measured vlos lies below it is
+        excluded (it is outside the selection the emulator models; see "Selection on measured
+        velocities" in the module docstring).
     """
     if samples.n != catalog.n:
         raise ValueError(f"samples: expected {catalog.n} stars (the catalog's), got {samples.n}")
@@ -366,6 +421,9 @@ def prepare_stars(catalog, samples, spec: SummarySpec, solar=None, min_inside: f
                       f"(r in [{r_lo:g}, {spec.r_edges[-1]:g}] kpc; median r = {r_med:.1f} kpc)")
         elif vr_mean[i] <= 0:
             reason = f"it moves inward (v_r = {vr_mean[i]:.0f} km/s); the emulator models outgoing stars"
+        elif vlos_min is not None and not catalog.vlos[i] >= vlos_min:
+            reason = (f"its measured vlos = {catalog.vlos[i]:.0f} km/s is below the selection's vlos_min = "
+                      f"{vlos_min:g} km/s; the emulator models stars selected above it")
         elif spec.vr_edges and vr_mean[i] >= spec.vr_edges[-1]:
             reason = (f"its v_r = {vr_mean[i]:.0f} km/s lies beyond the emulator's v_r histogram "
                       f"(0-{spec.vr_edges[-1]:g} km/s)")
@@ -490,6 +548,30 @@ def _pack(stars: StarTerms, vr_edges=()) -> _Packed:
 
 
 # ------------------------------------------------------------------------------ likelihood ----
+def check_measured_cut(emulator, vlos_min):
+    """``vlos_min`` as a float (or None), after checking that ``emulator`` was trained with the
+    same cut on the true vlos (its ``metadata["selection"]``); a one-line ValueError otherwise."""
+    if vlos_min is None:
+        return None
+    try:
+        vlos_min = float(vlos_min)
+    except (TypeError, ValueError):
+        raise ValueError(f"vlos_min: expected a number of km/s, got {vlos_min!r}") from None
+    if not np.isfinite(vlos_min):
+        raise ValueError(f"vlos_min: expected a finite number of km/s, got {vlos_min!r}")
+    meta = getattr(emulator, "metadata", None) or {}
+    if not isinstance(meta.get("selection"), dict):
+        raise ValueError(f"vlos_min = {vlos_min:g} km/s: the emulator records no selection, so it cannot be "
+                         "checked to be trained with that cut; train one with [selection] vlos_min")
+    trained = meta["selection"].get("vlos_min")
+    if trained is None or abs(float(trained) - vlos_min) > 1e-9 * max(1.0, abs(vlos_min)):
+        was = "no vlos_min cut" if trained is None else f"vlos_min = {float(trained):g} km/s"
+        raise ValueError(f"vlos_min = {vlos_min:g} km/s: the stars were selected on their measured vlos with "
+                         f"this cut but the emulator was trained with {was}; train one with [selection] "
+                         f"vlos_min = {vlos_min:g}")
+    return vlos_min
+
+
 EMULATOR_ERROR_MODES = ("catalog", "per-star", "none")
 
 #: km/s added in quadrature to every emulated cell dispersion (see ``Likelihood``'s ``velocity_floor``)
@@ -576,12 +658,22 @@ class Likelihood:
     halo_sigma : sequence of 3 floats
         The halo's velocity dispersions (σ_r, σ_θ, σ_φ), km/s (default
         :data:`swerve.background.HALO_SIGMA`).
+    vlos_min : float, optional
+        The cut the stars were selected with on their *measured* heliocentric line-of-sight
+        velocity, km/s (a catalog's declared ``selection``). The emulator must have been trained
+        with the same cut on the true value (its metadata's ``selection``; refused otherwise, and
+        an emulator that records no selection is refused too): with that, the plain likelihood is
+        the truncated one to first order in the vlos errors and no per-call term is needed (module
+        docstring, "Selection on measured velocities"). The stars should come from
+        :func:`prepare_stars` with the same ``vlos_min``, which excludes stars below it. None:
+        the stars' selection is not stated (not checked).
     """
 
     def __init__(self, emulator, stars: StarTerms, spec: SummarySpec, include_emulator_variance: bool = True,
                  emulator_variance: str = "ensemble", variance_refresh: float = 0.25,
                  emulator_error: str = "catalog", velocity_floor: float = DEFAULT_VELOCITY_FLOOR,
-                 fisher_refresh: float = 0.02, background: str = "none", halo_sigma=None):
+                 fisher_refresh: float = 0.02, background: str = "none", halo_sigma=None,
+                 vlos_min: float | None = None):
         from .background import BACKGROUNDS, HALO_SIGMA, MIXTURE_PARAMETER, halo_log_density
 
         if emulator_variance not in ("ensemble", "per-walker"):
@@ -592,6 +684,7 @@ class Likelihood:
         if not (np.isfinite(velocity_floor) and velocity_floor >= 0):
             raise ValueError(f"velocity_floor: expected a non-negative number of km/s, got {velocity_floor!r}")
         self.velocity_floor = float(velocity_floor)
+        self.vlos_min = check_measured_cut(emulator, vlos_min)
         self.emulator = emulator
         self.stars = stars
         self.spec = spec

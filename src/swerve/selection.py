@@ -20,6 +20,24 @@ Cuts (all optional, all combined with AND):
     Minimum absolute Galactic latitude |b|, deg (a footprint that avoids the disk).
 ``dec_min``, ``dec_max``
     Declination range, deg (a survey's sky footprint).
+``vlos_min``
+    Minimum heliocentric line-of-sight velocity, km/s, in the solar frame of the population
+    (the training's ``[frame] solar``; a mock's ``solar``): a cut a survey makes on a
+    **measured** quantity (:data:`MEASURED_CUTS`).
+
+Cuts on measured quantities
+---------------------------
+Surveys of hypervelocity-star candidates commonly keep the stars whose *measured*
+line-of-sight velocity exceeds a threshold. Such a cut is applied to the **true** value when a
+training population is made (the training population has no errors: :meth:`Selection.apply`),
+to the **measured** value in a mock catalog (:func:`swerve.population.make_mock`, through
+:meth:`Selection.true_value_cuts` and :meth:`Selection.measured_mask`), and the likelihood
+treats the difference (:mod:`swerve.likelihood`, "Selection on measured velocities"). A
+catalog declares its selection in its meta (``selection``, as a mock does);
+:func:`check_declared` refuses a catalog whose declared velocity cuts differ from an emulator's.
+A cut on the measured Galactocentric speed is not offered: that speed is a nonlinear function
+of the distance and proper-motion errors, so the truncation it makes has no one-dimensional
+Gaussian form.
 """
 
 from __future__ import annotations
@@ -41,7 +59,17 @@ _FIELDS_DOC = {
     "abs_b_min": "minimum |Galactic latitude| [deg]",
     "dec_min": "minimum declination [deg]",
     "dec_max": "maximum declination [deg]",
+    "vlos_min": "minimum heliocentric line-of-sight velocity [km/s] (measured, in a mock and a survey)",
 }
+
+#: cuts a survey makes on measured quantities: applied to true values in training populations,
+#: to measured values in mocks (see the module docstring)
+MEASURED_CUTS = ("vlos_min",)
+#: cuts that change the velocity distribution at a position: a position-conditional likelihood
+#: is biased unless the catalog and the emulator share them (:func:`check_declared`)
+VELOCITY_CUTS = ("v_min", "unbound", "vlos_min")
+#: cuts that need heliocentric observables
+_HELIO_CUTS = ("d_min", "d_max", "abs_b_min", "dec_min", "dec_max", "vlos_min")
 
 
 class EmptySelectionError(ValueError):
@@ -62,6 +90,7 @@ class Selection:
     abs_b_min: float | None = None
     dec_min: float | None = None
     dec_max: float | None = None
+    vlos_min: float | None = None
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -108,7 +137,30 @@ class Selection:
 
     @property
     def needs_heliocentric(self) -> bool:
-        return any(getattr(self, k) is not None for k in ("d_min", "d_max", "abs_b_min", "dec_min", "dec_max"))
+        return any(getattr(self, k) is not None for k in _HELIO_CUTS)
+
+    @property
+    def has_measured_cuts(self) -> bool:
+        """True when a cut is made on a measured quantity (:data:`MEASURED_CUTS`)."""
+        return any(getattr(self, k) is not None for k in MEASURED_CUTS)
+
+    def galactocentric(self) -> Selection:
+        """This selection without its heliocentric cuts (those reflection-invariant, applied in
+        the octant before mirroring)."""
+        return dataclasses.replace(self, **{k: None for k in _HELIO_CUTS})
+
+    def true_value_cuts(self) -> Selection:
+        """This selection without its cuts on measured quantities: what a mock applies to its
+        true stars before their errors are drawn."""
+        return dataclasses.replace(self, **{k: None for k in MEASURED_CUTS})
+
+    def measured_mask(self, vlos) -> np.ndarray:
+        """Boolean mask of the stars whose measured line-of-sight velocity ``vlos`` (km/s)
+        passes the measured cuts (all True without them)."""
+        vlos = np.asarray(vlos, dtype=float)
+        if self.vlos_min is None:
+            return np.ones(vlos.shape, dtype=bool)
+        return vlos >= self.vlos_min
 
     def describe(self) -> str:
         parts = []
@@ -132,7 +184,7 @@ class Selection:
         solar : SolarParameters or name, optional
             Solar parameters for the heliocentric cuts (default: the frames module's default).
         helio : dict, optional
-            Precomputed heliocentric observables (``distance``, ``ra``, ``dec``) to reuse.
+            Precomputed heliocentric observables (``distance``, ``ra``, ``dec``, ``vlos``) to reuse.
         report : bool
             Also return ``{cut name: number of stars it removed (applied in order)}``.
         """
@@ -182,6 +234,8 @@ class Selection:
                 cut("dec_min", helio["dec"] >= self.dec_min)
             if self.dec_max is not None:
                 cut("dec_max", helio["dec"] <= self.dec_max)
+            if self.vlos_min is not None:  # a training population: the true value (no errors)
+                cut("vlos_min", helio["vlos"] >= self.vlos_min)
         if report:
             return mask, removed
         return mask
@@ -192,3 +246,77 @@ class Selection:
             raise EmptySelectionError(
                 f"{what}: the selection ({self.describe()}) keeps no star; loosen the cuts"
             )
+
+
+# -------------------------------------------------------------------------- declared selections
+def declared_selection(catalog_meta, source: str = "catalog") -> Selection | None:
+    """The selection a catalog declares in its meta (``selection``, a table of cuts as
+    :meth:`Selection.to_dict` writes it; a FITS mock's meta is read back from its ``SWMnnnnn``
+    header cards), or None when it declares none."""
+    import json
+
+    meta = dict(catalog_meta or {})
+    if "selection" not in meta:
+        cards = sorted(k for k in meta if isinstance(k, str) and k.upper().startswith("SWM") and k[3:].isdigit())
+        if cards:
+            try:
+                meta = json.loads("".join(str(meta[k]) for k in cards))
+            except ValueError:
+                raise ValueError(f"{source}: its SWM header cards do not hold the JSON meta of a swerve mock") from None
+            if not isinstance(meta, dict):
+                return None
+    sel = meta.get("selection")
+    if sel is None:
+        return None
+    if isinstance(sel, Selection):
+        return sel
+    if not isinstance(sel, dict):
+        raise ValueError(f"{source}: meta 'selection': expected a table of cuts (name: value), got {sel!r:.60}")
+    return Selection.from_dict(sel, source=f"{source} (meta 'selection')")
+
+
+def _same(a, b) -> bool:
+    if a is None or b is None or isinstance(a, bool) or isinstance(b, bool):
+        return a == b
+    return abs(float(a) - float(b)) <= 1e-9 * max(1.0, abs(float(a)), abs(float(b)))
+
+
+def _show(name, value) -> str:
+    if value is None or value is False:
+        return f"no {name} cut"
+    if value is True:
+        return name
+    unit = " km/s" if name in ("v_min", "vlos_min") else ""
+    return f"{name} = {value:g}{unit}"
+
+
+def check_declared(catalog_meta, emulator_selection, source: str = "catalog") -> None:
+    """Refuse (ValueError, one line) a catalog whose declared selection differs from the
+    emulator's in a cut that changes the velocity distribution at a position
+    (:data:`VELOCITY_CUTS`: ``v_min``, ``unbound``, ``vlos_min``).
+
+    ``catalog_meta``: the catalog's meta (its ``selection``, see :func:`declared_selection`);
+    a catalog that declares no selection is not checked. ``emulator_selection``: the emulator
+    metadata's ``selection`` (a dict as :meth:`Selection.to_dict` writes it, a Selection, or
+    None for an emulator that records none: then no velocity cut). Spatial cuts (radius,
+    distance, latitude, declination) and ``outgoing`` are not compared: the likelihood conditions
+    on each star's position and excludes inward-moving stars itself.
+    """
+    declared = declared_selection(catalog_meta, source)
+    if declared is None:
+        return
+    if emulator_selection is None:
+        emu = Selection(r_min=None, outgoing=False)
+    elif isinstance(emulator_selection, Selection):
+        emu = emulator_selection
+    else:
+        emu = Selection.from_dict(dict(emulator_selection), source="emulator metadata (selection)")
+    for name in VELOCITY_CUTS:
+        a, b = getattr(declared, name), getattr(emu, name)
+        if not _same(a, b):
+            fix = (f"train an emulator with [selection] {name} = {a:g}" if a not in (None, False, True)
+                   else f"train an emulator with [selection] {name} = true" if a is True
+                   else f"train an emulator without the {name} cut")
+            raise ValueError(f"{source}: the catalog declares {_show(name, a)} (meta 'selection') but the emulator "
+                             f"was trained with {_show(name, b)}: a velocity cut changes the velocity "
+                             f"distribution the emulator models; {fix}")

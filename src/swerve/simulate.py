@@ -14,8 +14,13 @@ The training configuration is a TOML file (schema :data:`TRAIN_SCHEMA`; ``swerve
 ``[launch]``    ``model`` (``"power-law"``: :class:`~swerve.launch.BoundedPowerLawSpeed`),
                 ``infer`` / ``fixed`` tables of its parameters, ``points_per_galaxy``,
                 ``flight_time_max`` (Myr);
-``[selection]`` the cuts of :class:`~swerve.selection.Selection` (galactocentric only: the
-                summaries are computed in the octant);
+``[selection]`` the cuts of :class:`~swerve.selection.Selection`: radius range, outgoing, speed,
+                and ``vlos_min``, a survey's cut on the measured heliocentric line-of-sight
+                velocity (km/s, in the ``[frame]`` solar parameters), applied here to the true
+                value (the training population has no errors; the likelihood treats the
+                difference, :mod:`swerve.likelihood`). The summaries are computed in the
+                octant, or on all 8 reflections of every sample with ``vlos_min`` (a
+                heliocentric cut is not reflection-symmetric);
 ``[summaries]`` :class:`~swerve.summaries.SummarySpec`;
 ``[bank]``      orbits per design point, flight-time grid, proposal, tolerances;
 ``[design]``    method, size, held-out size, master seed;
@@ -28,8 +33,17 @@ from __future__ import annotations
 import time
 
 import numpy as np
+from scipy.stats import qmc
 
-from .config import Key, Schema, Section, load_config, validate
+from .bank import build_bank
+from .config import Key, Schema, Section, config_hash, load_config, validate
+from .fileio import did_you_mean
+from .frames import SolarParameters
+from .galaxy import Galaxy
+from .launch import BoundedPowerLawSpeed
+from .population import select_bank
+from .selection import Selection
+from .summaries import SummarySpec, compute_summaries
 
 LAUNCH_MODELS = ("power-law",)
 
@@ -54,6 +68,9 @@ TRAIN_SCHEMA = Schema("train", (
         Key("r_max", "float", 250.0, min=0.0, doc="maximum galactocentric radius, kpc"),
         Key("outgoing", "bool", True, doc="keep only outgoing stars (v_r > 0)"),
         Key("v_min", "float", 0.0, min=0.0, doc="minimum galactocentric speed, km/s (0: no cut)"),
+        Key("vlos_min", "float", None,
+            doc="a survey's cut on the measured heliocentric line-of-sight velocity, km/s (applied to the true "
+                "value in training; fit catalogs selected with the same cut on the measured value; unset: no cut)"),
     )),
     Section("summaries", (
         Key("r_edges", "list[float]", [10.0, 20.0, 35.0, 60.0, 100.0, 250.0], min=0.0, doc="radius cells, kpc"),
@@ -99,8 +116,6 @@ def simulation_hash(cfg) -> str:
     the same run folder with other ``[emulator]`` settings) reuses the simulations. Run folders
     (``run.json``, every point file) carry this hash; the emulator records the full
     :func:`swerve.config.config_hash` too."""
-    from .config import config_hash
-
     return config_hash({k: v for k, v in cfg.items() if k != "emulator"})
 
 
@@ -108,10 +123,6 @@ class TrainingSetup:
     """A validated training configuration, resolved against the parameter declarations."""
 
     def __init__(self, cfg: dict, source: str = "<config>"):
-        from .galaxy import Galaxy
-        from .selection import Selection
-        from .summaries import SummarySpec
-
         self.cfg = cfg
         self.source = source
         g = cfg["galaxy"]
@@ -128,8 +139,6 @@ class TrainingSetup:
             self.galaxy_decl[name].validate(lo)
             self.galaxy_decl[name].validate(hi)
 
-        from .launch import BoundedPowerLawSpeed
-
         lc = cfg["launch"]
         self.launch_cls = BoundedPowerLawSpeed
         self.launch_decl = {p.name: p for p in BoundedPowerLawSpeed.PARAMETERS}
@@ -143,7 +152,7 @@ class TrainingSetup:
 
         s = cfg["selection"]
         self.selection = Selection(r_min=s["r_min"], r_max=s["r_max"], outgoing=s["outgoing"],
-                                   v_min=s["v_min"] or None)
+                                   v_min=s["v_min"] or None, vlos_min=s.get("vlos_min"))
         sm = cfg["summaries"]
         try:
             self.spec = SummarySpec(r_edges=tuple(sm["r_edges"]), lat_edges=tuple(sm["lat_edges"]),
@@ -158,8 +167,6 @@ class TrainingSetup:
 
     @staticmethod
     def _suggest(name, decl):
-        from .fileio import did_you_mean
-
         return did_you_mean(name, decl, list_all=True)
 
     def _bounds(self, table, decl, where):
@@ -207,8 +214,6 @@ class TrainingSetup:
         return [decl[n].unit for n in self.parameter_names]
 
     def galaxy_at(self, theta: dict):
-        from .galaxy import Galaxy
-
         g = self.cfg["galaxy"]
         params = dict(self.galaxy_fixed)
         params.update({n: theta[n] for n in self.galaxy_names})
@@ -221,9 +226,6 @@ class TrainingSetup:
 
     def metadata(self) -> dict:
         """What an emulator records about how it was trained (JSON-safe)."""
-        from .config import config_hash
-        from .frames import SolarParameters
-
         return {
             "config_hash": config_hash(self.cfg),
             "simulation_hash": simulation_hash(self.cfg),
@@ -251,8 +253,6 @@ def training_setup_from_dict(d: dict, source: str = "<config>") -> TrainingSetup
 def launch_points(setup: TrainingSetup, seed) -> np.ndarray:
     """The launch-parameter points of one design point: a scrambled Sobol / LHS sample of the
     launch bounds, ``(points_per_galaxy, n_launch)``, from the point's own seed."""
-    from scipy.stats import qmc
-
     d = len(setup.launch_names)
     if d == 0:
         return np.zeros((1, 0))
@@ -269,10 +269,6 @@ def simulate_point(cfg: dict, theta: dict, seed) -> dict[str, np.ndarray]:
     Returns arrays: ``launch`` (L, n_launch), ``values`` and ``noise_var`` (L, n_outputs),
     ``ess`` (L, n_cells), ``bank_seconds``, ``max_energy_error``.
     """
-    from .bank import build_bank
-    from .population import population_from_bank
-    from .summaries import compute_summaries
-
     setup = TrainingSetup(cfg)
     ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     s_bank, s_launch, s_boot = ss.spawn(3)
@@ -294,10 +290,14 @@ def simulate_point(cfg: dict, theta: dict, seed) -> dict[str, np.ndarray]:
     pts = launch_points(setup, s_launch)
     rng = np.random.default_rng(s_boot)
     values, noise, ess = [], [], []
+    # a heliocentric cut (vlos_min) is not reflection-symmetric: all 8 reflections, weight 1/8 each;
+    # mirroring and cuts are made once per bank, the launch points only reweight
+    helio = setup.selection.needs_heliocentric
+    views = [select_bank(bk, setup.selection, galaxy=galaxy, mirror="all" if helio else "none",
+                         solar=cfg["frame"]["solar"] if helio else None) for bk in banks]
     for row in pts:
         launch = setup.launch_at(dict(zip(setup.launch_names, row)))
-        parts = [population_from_bank(bk, launch, selection=setup.selection, galaxy=galaxy, mirror="none",
-                                      flight_time_max=setup.flight_time_max) for bk in banks]
+        parts = [v.population(launch, flight_time_max=setup.flight_time_max) for v in views]
         offset = np.cumsum([0] + [bk.n_orbits for bk in banks])
         pos = np.concatenate([p.pos for p in parts])
         vel = np.concatenate([p.vel for p in parts])

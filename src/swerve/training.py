@@ -95,6 +95,12 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from joblib import Parallel, delayed, parallel_config
+from scipy.stats import qmc
+from tqdm import tqdm
+
+from . import __version__
+from .fileio import write_atomic
 
 __all__ = [
     "RUN_FORMAT_VERSION",
@@ -207,8 +213,6 @@ def make_design(
     >>> names, pts.shape
     (['q_z', 'q_y'], (8, 2))
     """
-    from scipy.stats import qmc
-
     names, lows, highs = _check_bounds(bounds)
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
         raise ValueError(f"n must be a positive integer, got {n!r}")
@@ -263,14 +267,10 @@ def _point_path(points_dir: Path, index: int) -> Path:
 def _atomic_write(path: Path, write: Callable) -> None:
     """Write ``path`` all at once (:func:`swerve.fileio.write_atomic`): ``write(fh)`` into a
     temporary file ``.<name>.<random><suffix>`` beside it, synced, then renamed."""
-    from .fileio import write_atomic
-
     write_atomic(path, write)
 
 
 def _swerve_version() -> str:
-    from swerve import __version__
-
     return __version__
 
 
@@ -490,7 +490,7 @@ class RunSummary:
 @contextlib.contextmanager
 def _dask_client(dask_address, dask_local_workers):
     try:
-        from dask.distributed import Client, LocalCluster
+        from dask.distributed import Client, LocalCluster  # noqa: PLC0415 - optional (the dask extra), backend='dask' only
     except ImportError:  # pragma: no cover - depends on the installation
         raise ValueError(
             "backend='dask' needs dask.distributed: pip install 'swerve[dask]'"
@@ -515,8 +515,6 @@ def _execute(task, todo, pts, names, master_seed, held_out, backend, n_jobs,
         for i in todo:
             yield _compute(task, i, pts[i], names, master_seed, held_out)
         return
-    from joblib import Parallel, delayed, parallel_config
-
     calls = (delayed(_compute)(task, i, pts[i], names, master_seed, held_out) for i in todo)
     if backend == "loky":
         with parallel_config(backend="loky", n_jobs=n_jobs):
@@ -639,8 +637,6 @@ def run_design(
             todo.append(i)
             n_invalid += 1
     n_skipped = pts.shape[0] - len(todo)
-
-    from tqdm import tqdm
 
     n_computed = 0
     with tqdm(

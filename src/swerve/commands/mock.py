@@ -41,7 +41,7 @@ def _schema():
             nonneg = f.name in ("r_min", "r_max", "d_min", "d_max", "v_min", "abs_b_min")
             default = EMULATOR_MODEL_DEFAULTS.get(f.name, f.default)
             sel_keys.append(Key(f.name, "float", default, min=0.0 if nonneg else None, doc=_FIELDS_DOC[f.name]))
-    law = "A, B, P: sigma(d) = A + B (d/10 kpc)**P at the true heliocentric distance d"
+    law = "[A, B, P]: sigma(d) = A + B (d/10 kpc)**P at the true heliocentric distance d"
     return Schema("mock", (
         Section("", (
             Key("n", "int", 300, min=1, doc="number of stars in the catalog"),
@@ -66,7 +66,8 @@ def _schema():
             Key("mass_range", "list[float]", None, length=2, min=0.0,
                 doc="Hills only: keep ejected stars with mass in [lo, hi] Msun"),
         ), doc="the launch model"),
-        Section("selection", tuple(sel_keys), doc="cuts on the true present-day stars"),
+        Section("selection", tuple(sel_keys), doc="cuts on the true present-day stars, except vlos_min: on the "
+                "measured line-of-sight velocity (stars whose measurement fails it are dropped, as a survey drops them)"),
         Section("errors", (
             Key("parallax", "list[float]", [0.02], min=0.0, doc=f"parallax uncertainty, mas ({law}); [] for none"),
             Key("distance_frac", "list[float]", [0.1], min=0.0, doc=f"fractional distance uncertainty ({law}); [] for none"),
@@ -96,7 +97,7 @@ def add_parser(sub):
             "and write a catalog (ECSV, FITS or CSV, from the file name) with the columns and units every "
             "other swerve command reads; the true parameters and all settings go into the table's meta. "
             "Every option can be set in a TOML file (--config; see --template); the command line wins. "
-            "Error laws are A[,B[,P]]: sigma(d) = A + B (d/10 kpc)^P at the true heliocentric distance."
+            "Error laws are A or A:B:P: sigma(d) = A + B (d/10 kpc)^P at the true heliocentric distance."
         ),
     )
     p.add_argument("--config", metavar=METAVAR["config"], help="read options from a TOML file")
@@ -120,15 +121,17 @@ def add_parser(sub):
                    help="Hills only: keep ejected stars with mass in [LO, HI] Msun")
     p.add_argument("--cut", action="append", metavar="NAME=VALUE", default=[],
                    help="a selection cut, e.g. r_min=10, outgoing=true, unbound=true, d_max=60 (repeatable; "
-                        "default: the shipped emulator's selection, r_min=10, r_max=250 and outgoing)")
-    p.add_argument("--error-parallax", default=None, metavar="A[,B[,P]]|none", help="parallax error law, mas (default 0.02)")
-    p.add_argument("--error-distance-frac", default=None, metavar="A[,B[,P]]|none",
+                        "default: the shipped emulator's selection, r_min=10, r_max=250 and outgoing); "
+                        "vlos_min=KMS cuts the MEASURED line-of-sight velocity, as a survey does (fit such a "
+                        "mock with an emulator trained with [selection] vlos_min = KMS)")
+    p.add_argument("--error-parallax", default=None, metavar="A[:B:P]|none", help="parallax error law, mas (default 0.02)")
+    p.add_argument("--error-distance-frac", default=None, metavar="A[:B:P]|none",
                    help="fractional error law of an independent (spectrophotometric) distance (default 0.1); "
                         "with 'none' only parallaxes are written, and observed parallaxes <= 0 make rows "
                         "that swerve.catalog refuses")
-    p.add_argument("--error-pm", default=None, metavar="A[,B[,P]]", help="proper-motion error law, mas/yr (default 0,0.01,1)")
+    p.add_argument("--error-pm", default=None, metavar="A[:B:P]", help="proper-motion error law, mas/yr (default 0:0.01:1)")
     p.add_argument("--error-pm-corr", type=float, default=None, metavar="RHO", help="pmra-pmdec error correlation (default 0)")
-    p.add_argument("--error-vlos", default=None, metavar="A[,B[,P]]", help="line-of-sight velocity error law, km/s (default 5)")
+    p.add_argument("--error-vlos", default=None, metavar="A[:B:P]", help="line-of-sight velocity error law, km/s (default 5)")
     p.add_argument("--bank-size", type=int, default=None, metavar="N", help="orbits in the trajectory bank (default 4000)")
     p.add_argument("--bank-file", default=None, metavar="FILE.npz", help="use a saved trajectory bank")
     p.add_argument("--save-bank", default=None, metavar="FILE.npz", help="save the bank built here")
@@ -139,15 +142,16 @@ def add_parser(sub):
 
 
 def _law_list(text, option):
+    """The numbers of an error law given on the command line: ``A`` or ``A:B:P``
+    (:func:`swerve.measurement.parse_error_law`), or [] for 'none'."""
+    from ..measurement import parse_error_law
+
     if text.strip().lower() == "none":
         return []
     try:
-        vals = [float(x) for x in text.split(",")]
-    except ValueError:
-        raise CommandError(f"{option} {text!r}: expected A[,B[,P]] numbers or 'none'") from None
-    if not 1 <= len(vals) <= 3:
-        raise CommandError(f"{option} {text!r}: expected one to three numbers A[,B[,P]]")
-    return vals
+        return parse_error_law(text, option)
+    except ValueError as exc:
+        raise CommandError(str(exc)) from None
 
 
 def _parse_cut(item):
@@ -224,7 +228,7 @@ def _config(args):
 def _build(cfg, params):
     from ..galaxy import DEFAULT_GALAXY, Galaxy
     from ..launch import BoundedPowerLawSpeed, HillsLaunch
-    from ..population import ErrorLaw, ErrorModel
+    from ..measurement import ErrorLaw, ErrorModel
     from ..selection import Selection
 
     gal, lau = cfg["galaxy"], cfg["launch"]
@@ -259,7 +263,7 @@ def _build(cfg, params):
         vals = err[key]
         if vals:
             if len(vals) > 3:
-                raise CommandError(f"[errors] {key}: expected one to three numbers A[,B[,P]], got {vals}")
+                raise CommandError(f"[errors] {key}: expected one to three numbers [A, B, P], got {vals}")
             laws[key] = ErrorLaw(*vals)
         elif key in ("pm", "vlos"):
             raise CommandError(f"[errors] {key}: an uncertainty is required")
