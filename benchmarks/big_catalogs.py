@@ -25,12 +25,12 @@ def main():
     args = ap.parse_args()
 
     from swerve.emulate import load
+    from swerve.measurement import parse_error_model
     from swerve.simulate import training_setup_from_dict
     from swerve.validation import (
         _grid_theta,
         draw_catalogs,
         fit_many,
-        parse_error_model,
         validation_bank,
     )
 
@@ -48,7 +48,8 @@ def main():
             tabs, _ = draw_catalogs(setup, gal, setup.launch_at(lt), bank,
                                     parse_error_model("pm=0.02,vlos=5,dist=0.1"), args.n_stars, 1, rng)
         tasks.append((tabs[0], int(rng.integers(2 ** 31)), None))
-    cfg = dict(samples=32, nwalkers=32, max_steps=3000, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49)
+    cfg = dict(samples=32, nwalkers=32, max_steps=3000, check_every=250, n_tau=25.0, tau_rtol=0.1, n_draws=49,
+               adjust=False)
     print("truth: " + ", ".join(f"{k} {truth[k]:.4g}" for k in emu.parameter_names))
     runs = [(path, cfg, "") for path in args.emulators]
     if args.adjust:

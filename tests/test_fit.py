@@ -21,7 +21,8 @@ def mock_catalog(tmp_path_factory, smoke_run):
     """A mock from the forward model inside the smoke emulator's domain and selection."""
     from swerve.galaxy import Galaxy
     from swerve.launch import BoundedPowerLawSpeed
-    from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock, write_mock
     from swerve.selection import Selection
 
     g = Galaxy.from_name(halo_flattening="density", q_y=1.05, q_z=0.9)

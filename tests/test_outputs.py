@@ -27,7 +27,8 @@ def mock_catalog(tmp_path_factory, smoke_run):
     """A mock inside the smoke emulator's domain and selection (as in tests/test_fit.py)."""
     from swerve.galaxy import Galaxy
     from swerve.launch import BoundedPowerLawSpeed
-    from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock, write_mock
     from swerve.selection import Selection
 
     g = Galaxy.from_name(halo_flattening="density", q_y=1.05, q_z=0.9)
@@ -205,7 +206,7 @@ FORECAST_CFG = "[bank]\nn_orbits = 300\n"
 
 
 def _stand_in_fits(emulator_dir, tasks, fit_cfg, n_jobs=1, solar="v4.0"):
-    """Stand-in for swerve.validation.fit_many (the fits are tests/test_validation.py's): a
+    """Stand-in for swerve.validation.fit_many, as swerve.forecast imports it (the fits are tests/test_validation.py's): a
     "posterior" computed from each catalog's stars and seed, so two forecasts agree only when
     they drew the same catalogs with the same seeds."""
     fits = []
@@ -219,7 +220,7 @@ def _stand_in_fits(emulator_dir, tasks, fit_cfg, n_jobs=1, solar="v4.0"):
 def test_forecast_writes_each_row_and_resumes(smoke_run, tmp_path, monkeypatch, capsys):
     """Interrupted after the first sample size, forecast.json holds that row; the rerun fits only
     the missing one and ends with the rows of an uninterrupted run."""
-    import swerve.validation as validation
+    import swerve.forecast as forecast
 
     _, emu = smoke_run
     cfg = tmp_path / "fc.toml"
@@ -232,7 +233,7 @@ def test_forecast_writes_each_row_and_resumes(smoke_run, tmp_path, monkeypatch, 
         calls.append(len(tasks[0][0]))
         return _stand_in_fits(emulator_dir, tasks, *a, **k)
 
-    monkeypatch.setattr(validation, "fit_many", counted)
+    monkeypatch.setattr(forecast, "fit_many", counted)
     assert main([*args, "--out", str(tmp_path / "whole")]) == 0
     whole = json.loads((tmp_path / "whole" / "forecast.json").read_text())
     assert whole["settings"]["complete"] and [r["n_stars"] for r in whole["rows"]] == [20, 30]
@@ -243,7 +244,7 @@ def test_forecast_writes_each_row_and_resumes(smoke_run, tmp_path, monkeypatch, 
             raise KeyboardInterrupt
         return counted(emulator_dir, tasks, *a, **k)
 
-    monkeypatch.setattr(validation, "fit_many", interrupted)
+    monkeypatch.setattr(forecast, "fit_many", interrupted)
     out = tmp_path / "part"
     assert main([*args, "--out", str(out)]) == 130
     part = json.loads((out / "forecast.json").read_text())
@@ -251,7 +252,7 @@ def test_forecast_writes_each_row_and_resumes(smoke_run, tmp_path, monkeypatch, 
     assert part["rows"][0] == whole["rows"][0]
     assert not [p.name for p in out.iterdir() if p.name.startswith(".")]  # no temporary file left
     calls.clear()
-    monkeypatch.setattr(validation, "fit_many", counted)
+    monkeypatch.setattr(forecast, "fit_many", counted)
     assert main([*args, "--out", str(out)]) == 0
     assert calls == [30]  # only the missing sample size was fitted
     assert "resuming" in capsys.readouterr().out
@@ -269,7 +270,7 @@ def test_sigterm_unwinds_like_an_interruption(smoke_run, tmp_path, monkeypatch, 
     import os
     import signal
 
-    import swerve.validation as validation
+    import swerve.forecast as forecast
 
     _, emu = smoke_run
     cfg = tmp_path / "fc.toml"
@@ -280,7 +281,7 @@ def test_sigterm_unwinds_like_an_interruption(smoke_run, tmp_path, monkeypatch, 
             os.kill(os.getpid(), signal.SIGTERM)
         return _stand_in_fits(emulator_dir, tasks, *a, **k)
 
-    monkeypatch.setattr(validation, "fit_many", terminated)
+    monkeypatch.setattr(forecast, "fit_many", terminated)
     before = signal.getsignal(signal.SIGTERM)
     out = tmp_path / "fc"
     rc = main(["forecast", "--emulator", str(emu), "--n", "20,30", "--catalogs", "2", "--jobs", "1",

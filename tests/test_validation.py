@@ -9,10 +9,10 @@ import numpy as np
 import pytest
 
 from swerve.cli import main
+from swerve.measurement import parse_error_model
 from swerve.validation import (
     coverage_test,
     load_validate_config,
-    parse_error_model,
     rank_test,
     sbc_rank,
 )

@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .sampling import Posterior, find_map
+
 
 def curvature_adjustment(like, theta_hat, low, high, h1: float = 0.02, radius: float = 0.1, n_fit: int = 96,
                          flat: float = 1e-3, seed: int = 0, free=None):
@@ -142,8 +144,6 @@ def adjusted_posterior(post, like, bounds, rng):
     likelihood adjusted at its maximum (found with :func:`swerve.sampling.find_map` and ``rng``),
     free parameters only. Returns ``(posterior, x_map, C, info)``; ``x_map`` is over the free
     parameters (the adjusted posterior's maximum too: the adjustment keeps it)."""
-    from .sampling import Posterior, find_map
-
     lo, hi = np.asarray(bounds, dtype=float).T
     x_map = find_map(post, rng)
     theta_hat = post.full(x_map)[0]

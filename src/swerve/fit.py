@@ -1,9 +1,10 @@
-"""A fit of an observed catalog against an emulator: configuration, star terms with reuse,
-sampling, and the run folder a researcher reads.
+"""``swerve fit``: its configuration, and the run folder a researcher reads around the one
+catalog-to-posterior path (:mod:`swerve.inference`, which validation and forecasts call too).
 
 Data flow: catalog (validated) -> per-star distance samples and analytic velocity moments
 (:mod:`swerve.likelihood`, cached per star in the run folder, so a refit after a star is added
-recomputes only that star) -> likelihood -> priors -> emcee (:mod:`swerve.sampling`) -> results.
+recomputes only that star) -> likelihood -> priors -> Laplace-IS or emcee (:mod:`swerve.laplace`,
+:mod:`swerve.sampling`) -> results.
 A refit after stars are added to a converged fit reweights that fit's chain by the new stars
 (importance sampling, :func:`swerve.sampling.importance_weights`) instead of sampling again.
 
@@ -35,15 +36,30 @@ from __future__ import annotations
 
 import hashlib
 import json
+import shutil
 import time
-import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
+import astropy.units as u
+import emcee
 import numpy as np
+from astropy.table import Table
+from threadpoolctl import threadpool_limits
 
-from . import __version__
-from .config import Key, Schema, Section, load_config, validate
+from . import __version__, inference, plots
+from .adjustment import AdjustedLikelihood
+from .background import add_membership_column
+from .catalog import parse_columns, parse_units, read_catalog
+from .config import Key, Schema, Section, defaults, load_config, validate
+from .emulate import content_hash, load
+from .fileio import atomic_path, write_json
+from .inference import FEW_STARS, FewStarsWarning, star_terms
+from .likelihood import Likelihood
+from .sampling import Posterior, SamplerResult, burn_and_thin, importance_weights
+
+__all__ = ["FEW_STARS", "FIT_SCHEMA", "FewStarsWarning", "FitOutcome", "load_fit_config", "run_fit", "star_terms",
+           "terminal_summary"]
 
 FIT_SCHEMA = Schema("fit", (
     Section("catalog", (
@@ -109,10 +125,10 @@ FIT_SCHEMA = Schema("fit", (
     )),
     Section("emulator", (
         Key("include_variance", "bool", True, doc="propagate the emulator's predictive uncertainty (false: take it as exact)"),
-        Key("error", "str", "catalog", choices=("catalog", "per-star"),
+        Key("error", "str", "catalog", choices=("catalog", "per-star", "none"),
             doc="marginalise the emulator's error of the cell means (and v_r histograms, where the emulator has "
-                "them) once for the catalog (shared by its stars) or fold the means' into each star's density "
-                "(too optimistic for large catalogs)"),
+                "them) once for the catalog (shared by its stars), fold the means' into each star's density "
+                "(too optimistic for large catalogs), or take the emulator as exact (none)"),
         Key("velocity_floor", "float", 1.0, min=0.0,
             doc="km/s added in quadrature to every emulated cell dispersion: the model's resolution "
                 "(the emulated cells are nearly degenerate; see swerve.likelihood.Likelihood)"),
@@ -124,8 +140,6 @@ FIT_SCHEMA = Schema("fit", (
 
 def load_fit_config(path=None, overrides: dict | None = None) -> dict:
     """The fit configuration (defaults when ``path`` is None), with section overrides merged."""
-    from .config import defaults
-
     cfg = load_config(path, FIT_SCHEMA) if path else defaults(FIT_SCHEMA)
     if overrides:
         merged = {k: dict(v) for k, v in cfg.items()}
@@ -135,140 +149,12 @@ def load_fit_config(path=None, overrides: dict | None = None) -> dict:
     return cfg
 
 
-# ------------------------------------------------------------------------------ star terms -----
-def _star_hash(catalog, i, settings: str) -> str:
-    fields = ("ra", "dec", "distance", "distance_err", "parallax", "parallax_err", "pmra", "pmra_err", "pmdec",
-              "pmdec_err", "vlos", "vlos_err", "corr_pmra_pmdec", "corr_parallax_pmra", "corr_parallax_pmdec")
-    vals = np.array([getattr(catalog, f)[i] for f in fields], dtype=float)
-    h = hashlib.sha256()
-    h.update(str(catalog.ids[i]).encode())
-    h.update(vals.tobytes())
-    h.update(settings.encode())
-    return h.hexdigest()
-
-
-def _subset_catalog(catalog, idx):
-    import dataclasses
-
-    arrays = {f.name: getattr(catalog, f.name)[idx] for f in dataclasses.fields(catalog)
-              if isinstance(getattr(catalog, f.name), np.ndarray)}
-    return dataclasses.replace(catalog, **arrays)
-
-
-def _star_seed(seed: int, star_id: str) -> np.random.SeedSequence:
-    digest = hashlib.sha256(str(star_id).encode()).digest()
-    return np.random.SeedSequence([seed, int.from_bytes(digest[:8], "little")])
-
-
-def star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
-    """θ-independent terms of every star (a :class:`~swerve.likelihood.StarTerms`), each star's
-    distance samples drawn from its own seed (``[errors] seed`` and its id), reusing the cached
-    terms of unchanged stars from ``cache_path`` and rewriting it (atomically). Returns
-    (terms, n_reused)."""
-    terms, reused, hashes = _star_terms(catalog, spec, cfg, solar, cache_path, r_min)
-    if cache_path is not None:
-        _write_star_cache(cache_path, hashes, terms)
-    return terms, reused
-
-
-def _write_star_cache(path, hashes, terms) -> None:
-    """``stars.npz``: each used star's input hash and θ-independent terms (written atomically)."""
-    from .fileio import write_atomic
-
-    write_atomic(path, lambda fh: np.savez(fh, hash=np.asarray(hashes), cell=terms.cell, mean=terms.mean,
-                                           cov=terms.cov, log_w=terms.log_w))
-
-
-def _star_terms(catalog, spec, cfg, solar, cache_path=None, r_min=None):
-    """:func:`star_terms` without writing the cache: (terms, n_reused, input hash of each used star).
-
-    A star whose measurements give non-finite terms (e.g. an absurd velocity that overflows in
-    the frame transform) is a ValueError naming its row and id."""
-    from .catalog import draw_samples
-    from .likelihood import StarTerms, linearised_samples, prepare_stars, smoothed_samples
-
-    e = cfg["errors"]
-    settings = json.dumps({"k": e["samples"], "method": e["method"], "prior": e["distance_prior"], "L": e["length_scale"],
-                           "dmax": e["max_distance"], "seed": e["seed"], "solar": solar.to_dict(),
-                           "spec": spec.to_dict(), "r_min": r_min, "v": 1}, sort_keys=True)
-    hashes = [_star_hash(catalog, i, settings) for i in range(catalog.n)]
-    cached = {}
-    if cache_path is not None and Path(cache_path).is_file():
-        try:
-            with np.load(cache_path, allow_pickle=False) as z:  # each z[name] reads the file: once each
-                hsh, cell, mean, cov, log_w = (z[k] for k in ("hash", "cell", "mean", "cov", "log_w"))
-            for j, h in enumerate(hsh):
-                cached[str(h)] = (cell[j], mean[j], cov[j], log_w[j])
-        except (OSError, KeyError, ValueError):
-            cached = {}
-    cells, means, covs, logws, keep_hash, ids, excluded = [], [], [], [], [], [], []
-    reused = 0
-    for i in range(catalog.n):
-        if hashes[i] in cached:
-            c, m, cv, lw = cached[hashes[i]]
-            reused += 1
-        else:
-            sub = _subset_catalog(catalog, [i])
-            rng = np.random.default_rng(_star_seed(e["seed"], catalog.ids[i]))
-            smp = draw_samples(sub, e["samples"], rng, distance_prior=e["distance_prior"], solar=solar,
-                               length_scale=e["length_scale"], max_distance=e["max_distance"])
-            # overflow of absurd inputs is caught by the finiteness check below, with the star named
-            with np.errstate(over="ignore", invalid="ignore"):
-                _check_finite_samples(catalog, i, smp)
-                if e["method"] == "linear":
-                    smp = linearised_samples(sub, smp, solar)
-                elif e["method"] == "smoothed":
-                    smp = smoothed_samples(sub, smp, solar)
-                t = prepare_stars(sub, smp, spec, solar=solar, r_min=r_min, allow_empty=True)
-            if t.n == 0:  # outside the selection: reported, never silently used
-                excluded.extend(t.excluded)
-                continue
-            c, m, cv, lw = t.cell[0], t.mean[0], t.cov[0], t.log_w[0]
-            inside = np.isfinite(lw)  # samples inside the cells (log weight -inf outside)
-            if not (inside.any() and np.all(np.isfinite(m[inside])) and np.all(np.isfinite(cv[inside]))
-                    and not np.any(np.isnan(lw))):
-                raise ValueError(f"{catalog.source}: row {int(catalog.rows[i])} (id {str(catalog.ids[i])!r}): "
-                                 "its measurements give non-finite Galactocentric velocities; check the "
-                                 "vlos, pmra, pmdec and distance (or parallax) columns")
-        cells.append(c)
-        means.append(m)
-        covs.append(cv)
-        logws.append(lw)
-        keep_hash.append(hashes[i])
-        ids.append(catalog.ids[i])
-    if not ids:
-        first = excluded[0] if excluded else {"id": "?", "reason": "empty catalog"}
-        raise ValueError(f"{catalog.source}: no star is usable inside the emulator's selection "
-                         f"({len(excluded)} excluded; first: {first['id']!r}: {first['reason']})")
-    terms = StarTerms(np.asarray(ids), np.asarray(cells), np.asarray(means), np.asarray(covs),
-                      np.asarray(logws), excluded)
-    return terms, reused, keep_hash
-
-
-def _check_finite_samples(catalog, i, smp) -> None:
-    """Refuse a star whose distance or velocity samples are not finite (one line, row and id)."""
-    for name in ("distance", "position", "velocity"):
-        arr = getattr(smp, name, None)
-        if arr is not None and not np.all(np.isfinite(np.asarray(arr, dtype=float))):
-            raise ValueError(f"{catalog.source}: row {int(catalog.rows[i])} (id {str(catalog.ids[i])!r}): "
-                             f"its measurements give non-finite {name} samples; check the vlos, pmra, pmdec "
-                             "and distance (or parallax) columns")
-
-
 # ------------------------------------------------------------------------------------ fit ------
 @dataclass
 class FitOutcome:
     summary: dict
     out_dir: Path
     terminal: str
-
-
-#: fewer usable stars than this fit with a :class:`FewStarsWarning`
-FEW_STARS = 10
-
-
-class FewStarsWarning(UserWarning):
-    """A fit of very few stars: its posterior is mostly the prior and the emulator's error."""
 
 
 def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, log=print) -> FitOutcome:
@@ -290,81 +176,24 @@ def run_fit(catalog_path, emulator_path, out_dir, cfg: dict, *, progress=False, 
         return _run_fit(catalog_path, emulator_path, out_dir, cfg, progress=progress, log=log)
     except Exception:
         if created is not None and created.is_dir():
-            import shutil
-
             shutil.rmtree(created, ignore_errors=True)
         raise
 
 
 def _run_fit(catalog_path, emulator_path, out_dir, cfg, *, progress=False, log=print) -> FitOutcome:
-    from .catalog import parse_columns, parse_units, read_catalog
-    from .emulate import content_hash, load
-    from .frames import SolarParameters
-    from .likelihood import Likelihood
-    from .sampling import Posterior, credible_summary, resolve_priors, sample_posterior
-    from .summaries import SummarySpec
-
+    """The run folder around :mod:`swerve.inference`'s path: the star cache, the chain (resumed,
+    reweighted by added stars, or new) and the outputs."""
     t_start = time.perf_counter()
     emu = load(emulator_path)
-    meta = emu.metadata or {}
-    if "summaries" not in meta:
-        raise ValueError(f"{emulator_path}: the emulator records no summary definition; it was not made by swerve train")
-    spec = SummarySpec.from_dict(meta["summaries"])
-    solar = SolarParameters.from_name(cfg["frame"]["solar"])
-    notes = []
-    emu_solar = (meta.get("solar") or {}).get("name")
-    if emu_solar and emu_solar != solar.name:
-        notes.append(f"the fit moves stars with solar parameters {solar.name!r}; the emulator was trained "
-                     f"with {emu_solar!r} (the emulator is galactocentric, so only the stars' transform changes)")
-    emu_rmin = (meta.get("selection") or {}).get("r_min") or 0.0
-    r_min = cfg["selection"]["r_min"]
-    if r_min and r_min < emu_rmin:
-        raise ValueError(f"[selection] r_min = {r_min:g} kpc is looser than the emulator's selection "
-                         f"(r >= {emu_rmin:g} kpc): stars there are outside what it was trained on")
-    if r_min and r_min > spec.r_edges[0]:
-        notes.append(f"stars with r < {r_min:g} kpc are excluded (stricter than the emulator's {emu_rmin:g} kpc)")
-
     c = cfg["catalog"]
     catalog = read_catalog(catalog_path, columns=parse_columns(c["columns"] or None),
                            units=parse_units(c["units"] or None), drop_invalid=c["drop_invalid"],
                            parallax_zero_point=c["parallax_zero_point"])
-    for p in catalog.problems:
-        notes.append(f"dropped: {p}")
-    from .catalog import check_parallaxes, distance_warning
-
-    for hint in catalog.hints + (distance_warning(catalog, cfg["errors"]["distance_prior"]),):
-        if hint:  # said now (the sampling takes a while) and kept in summary.json's notes
-            notes.append(f"warning: {hint}")
-            log(f"swerve fit: warning: {hint}")
-    check_parallaxes(catalog, cfg["errors"]["distance_prior"])  # every unusable parallax counted at once
-    t0 = time.perf_counter()
-    terms, reused, star_hashes = _star_terms(catalog, spec, cfg, solar, cache_path=out_dir / "stars.npz",
-                                             r_min=r_min or None)
-    t_terms = time.perf_counter() - t0
-    if terms.n < FEW_STARS:
-        few = (f"only {terms.n} usable star(s): the posterior is then mostly the prior and the emulator's "
-               f"own error, and its intervals are unreliable (a fit wants at least {FEW_STARS} stars)")
-        notes.append(few)
-        warnings.warn(f"{catalog.source}: {few}", FewStarsWarning, stacklevel=2)
-    like_options = dict(emulator=emu, spec=spec, include_emulator_variance=cfg["emulator"]["include_variance"],
-                        emulator_variance=cfg["emulator"]["variance"], emulator_error=cfg["emulator"]["error"],
-                        velocity_floor=cfg["emulator"]["velocity_floor"])
-    lk = cfg["likelihood"]
-    if lk["background"] != "none":  # the mixture (swerve.background)
-        like_options.update(background=lk["background"], halo_sigma=lk["halo_sigma"])
-        if lk["prior_membership"]:
-            from .background import prior_membership
-
-            terms.prior_membership = prior_membership(catalog, terms.ids, lk["prior_membership"])
-    elif lk["prior_membership"]:
-        raise ValueError("[likelihood] prior_membership needs a background population (background = 'halo')")
-    like = Likelihood(stars=terms, **like_options)
-    names = list(like.parameter_names)  # the emulator's, and f_hvs with a background
-    bounds = np.asarray(like.bounds, dtype=float)
-    priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
-    plain = Posterior(like, priors)
+    problem = inference.prepare(catalog, emu, cfg, cache_path=out_dir / "stars.npz", log=log,
+                                emulator_source=str(emulator_path))
+    terms, notes, names = problem.terms, problem.notes, problem.names
     out_dir.mkdir(parents=True, exist_ok=True)  # only once the inputs are known to be good
-    _write_star_cache(out_dir / "stars.npz", star_hashes, terms)
+    inference.write_star_cache(out_dir / "stars.npz", problem.star_hashes, terms)
     s = cfg["sampler"]
 
     # what defines the chain: the stars, the emulator and the configuration, except the step cap
@@ -385,150 +214,52 @@ def _run_fit(catalog_path, emulator_path, out_dir, cfg, *, progress=False, log=p
         notes.append("refit: the previous chain records no curvature adjustment, so it is not reweighted "
                      "by the adjusted likelihood; sampled anew")
         reweight = False
-    post, adjustment = plain, None
-    if cfg["likelihood"]["adjust"]:
-        # while a chain is reweighted by added stars, the adjustment stays the chain's own: adding
-        # a star moves the estimated maximum and matrix by their noise (the maximum of a wide
-        # posterior by a good part of its width), which would shift the target and spoil the
-        # weights; a new chain gets a new adjustment
-        post, adjustment = _adjusted(plain, like, bounds, s, names, notes, state["adjustment"] if reweight else None)
+    # while a chain is reweighted by added stars, the adjustment stays the chain's own: adding
+    # a star moves the estimated maximum and matrix by their noise (the maximum of a wide
+    # posterior by a good part of its width), which would shift the target and spoil the
+    # weights; a new chain gets a new adjustment
+    post, adjustment = inference.adjust(problem, cfg, state["adjustment"] if reweight else None)
     res = previous_start = None
     t1 = time.perf_counter()
-    # BLAS on one thread while sampling: the emulator's matrices are small (threads only add
-    # overhead, 5x measured) and the compiled likelihood kernel already uses every core
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(limits=1, user_api="blas"):
-        if changed:
-            if reweight:
-                res, start, why = _reweight(chain, state, post, terms, s, like_options, priors,
-                                            bounds if adjustment is not None else None)
-                if res is not None:
-                    notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
-                                 f"by the {len(added)} added star(s) ({why}); no new sampling")
-                else:
-                    notes.append(f"refit: reweighting the previous chain by the {len(added)} added star(s) was "
-                                 f"not reliable ({why}); a new chain was started from the reweighted samples")
-                    previous_start = start
-                    if adjustment is not None:  # the new chain gets its own adjustment
-                        notes[:] = [n for n in notes if not n.startswith("likelihood: curvature adjustment")]
-                        post, adjustment = _adjusted(plain, like, bounds, s, names, notes, None)
-            if res is None:
-                if previous_start is None:
-                    previous_start = _last_walkers(chain, post.ndim)
-                    notes.append("the data or configuration changed since the chain in this folder: a new chain "
-                                 "was started from the previous one's final walkers")
-                chain.unlink()
-        if res is None and (s["method"] == "laplace-is"
-                            or (s["method"] == "auto" and terms.n >= s["laplace_min_stars"])):
-            res, previous_start = _laplace(post, s, names, adjustment, notes, progress, previous_start)
+    if changed:
+        if reweight:
+            with threadpool_limits(limits=1, user_api="blas"):
+                res, start, why = _reweight(chain, state, post, terms, s, problem.like_options, problem.priors,
+                                            problem.bounds if adjustment is not None else None)
+            if res is not None:
+                notes.append(f"refit: the chain of the previous {len(state['stars'])} stars was reweighted "
+                             f"by the {len(added)} added star(s) ({why}); no new sampling")
+            else:
+                notes.append(f"refit: reweighting the previous chain by the {len(added)} added star(s) was "
+                             f"not reliable ({why}); a new chain was started from the reweighted samples")
+                previous_start = start
+                if adjustment is not None:  # the new chain gets its own adjustment
+                    notes[:] = [n for n in notes if not n.startswith("likelihood: curvature adjustment")]
+                    post, adjustment = inference.adjust(problem, cfg)
         if res is None:
-            adj_state = None if adjustment is None else {k: adjustment[k] for k in ("C", "kappa", "widened")}
-            if adj_state is not None:
-                adj_state["theta_hat"] = [adjustment["theta_hat"][n] for n in names]
-            _write_state(state_file, data_key, target_key, terms.ids, converged=False, adjustment=adj_state)
-            res = _sample(sample_posterior, post, s, chain, progress, previous_start)
-            _write_state(state_file, data_key, target_key, terms.ids, converged=res.converged, adjustment=adj_state)
+            if previous_start is None:
+                previous_start = _last_walkers(chain, post.ndim)
+                notes.append("the data or configuration changed since the chain in this folder: a new chain "
+                             "was started from the previous one's final walkers")
+            chain.unlink()
+    if res is None:
+        adj_state = None if adjustment is None else {k: adjustment[k] for k in ("C", "kappa", "widened")}
+        if adj_state is not None:
+            adj_state["theta_hat"] = [adjustment["theta_hat"][n] for n in names]
+
+        def record(converged):
+            _write_state(state_file, data_key, target_key, terms.ids, converged=converged, adjustment=adj_state)
+
+        res = inference.draw(problem, post, adjustment, cfg, chain=chain, progress=progress, start=previous_start,
+                             on_chain=record)
     t_sample = time.perf_counter() - t1
-
-    summ = credible_summary(res.samples, res.names, res.weights)
-    for j, n in enumerate(res.names):
-        summ[n]["tau"] = float(res.tau[j])
-    fixed = {p.name: p.value for p in priors if p.kind == "fixed"}
-    probs = {}
-    w = res.weights if res.weights is not None else np.full(len(res.samples), 1.0 / len(res.samples))
-    for q in ("q_z", "q_y"):
-        if q in res.names:
-            probs[f"P({q}<1)"] = float(np.sum(w * (res.samples[:, res.names.index(q)] < 1.0)))
-    summary = {
-        "parameters": summ,
-        "fixed": fixed,
-        "probabilities": probs,
-        "sampler": {"n_walkers": res.n_walkers, "n_steps": res.n_steps, "burn_in": res.burn_in, "thin": res.thin,
-                    "acceptance": res.acceptance, "converged": res.converged, "resumed_from": res.resumed_from,
-                    "n_samples": int(len(res.samples)),
-                    "method": ("laplace-is" if (res.importance or {}).get("method") == "laplace-is"
-                               else "reweighted" if res.weights is not None else "sampled"),
-                    "importance": res.importance},
-        "stars": {"used": terms.n, "excluded": terms.excluded, "terms_reused": reused},
-        "likelihood": {"adjustment": adjustment},
-        "timing_s": {"star_terms": round(t_terms, 2), "sampling": round(t_sample, 2),
-                     "total": round(time.perf_counter() - t_start, 2)},
-        "notes": notes,
-    }
-    # posterior sanity warnings (swerve.sampling.posterior_warnings): printed and in summary.json
-    from .sampling import posterior_warnings
-
-    summary["warnings"] = posterior_warnings(res.samples, res.names, priors, weights=res.weights,
-                                             kappa=(adjustment or {}).get("kappa"), n_stars=terms.n,
-                                             catalog_meta=catalog.meta, emulator_meta=meta)
-    med = np.array([summ[n]["median"] for n in res.names])
-    _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path,
-                   content_hash(emulator_path), solar, meta, priors)
+    summary = inference.summarize(problem, res, adjustment, seconds_sampling=t_sample,
+                                  seconds_total=time.perf_counter() - t_start)
+    med = np.array([summary["parameters"][n]["median"] for n in res.names])
+    _write_outputs(out_dir, summary, res, post, problem.likelihood, terms, problem.spec, med, catalog, cfg,
+                   emulator_path, content_hash(emulator_path), problem.solar, problem.meta, problem.priors)
     text = terminal_summary(summary, catalog_path, emulator_path)
     return FitOutcome(summary, out_dir, text)
-
-
-def _adjusted(plain, like, bounds, s, names, notes, recorded=None):
-    """The curvature-adjusted posterior and the summary's record of its adjustment: estimated at
-    the maximum of ``plain`` (:func:`swerve.adjustment.adjusted_posterior`), or, with
-    ``recorded`` (a chain state's ``theta_hat``, ``C`` and, when recorded, ``kappa``), that one
-    reused."""
-    from threadpoolctl import threadpool_limits
-
-    from .adjustment import AdjustedLikelihood, adjusted_posterior
-    from .sampling import Posterior
-
-    if recorded is not None:
-        theta_hat, C = np.asarray(recorded["theta_hat"], dtype=float), np.asarray(recorded["C"], dtype=float)
-        post = Posterior(AdjustedLikelihood(like, theta_hat, C, *np.asarray(bounds, dtype=float).T), plain.priors)
-        kappa, widened = recorded.get("kappa"), recorded.get("widened")
-        notes.append("likelihood: curvature adjustment of the chain being reweighted (kept while stars are added)")
-    else:
-        with threadpool_limits(limits=1, user_api="blas"):
-            post, x_map, C, info = adjusted_posterior(plain, like, bounds, np.random.default_rng(s["seed"]))
-        theta_hat = plain.full(x_map)[0]
-        kappa, widened = np.asarray(info["kappa"]).tolist(), bool(info["adjusted"])
-        notes.append("likelihood: curvature adjustment at the maximum; the score-to-curvature ratios of its "
-                     "informative directions: " + ", ".join(f"{k:.2f}" for k in kappa))
-    return post, {"theta_hat": dict(zip(names, np.asarray(theta_hat, dtype=float).tolist())),
-                  "C": np.asarray(C, dtype=float).tolist(), "kappa": kappa, "widened": widened,
-                  "reused": recorded is not None}
-
-
-def _laplace(post, s, names, adjustment, notes, progress, previous_start):
-    """The posterior by swerve.laplace; (result, None) when its weights are reliable, else
-    (None, starting walkers for emcee drawn from it)."""
-    from .laplace import laplace_is
-
-    x0 = None
-    if adjustment is not None:
-        x0 = np.array([adjustment["theta_hat"][n] for n in post.free_names])
-    lap = laplace_is(post, seed=s["seed"], x_map=x0, progress=progress)
-    if lap.reliable:
-        notes.append(f"posterior: Laplace approximation corrected by importance sampling (ESS {lap.ess:.0f} of "
-                     f"{len(lap.samples)}, Pareto k {lap.pareto_k:.2f}); no chain")
-        return lap.to_sampler_result(), None
-    nw = s["nwalkers"] or max(32, 4 * post.ndim)
-    nw += nw % 2
-    notes.append(f"posterior: the Laplace approximation was not reliable (Pareto k {lap.pareto_k:.2f}, "
-                 f"ESS {lap.ess:.0f}); emcee was started from its draws")
-    return None, lap.start_walkers(nw, np.random.default_rng(s["seed"]))
-
-
-def _sample(sample_posterior, post, s, chain, progress, start):
-    """``start``: the previous chain's final walkers (nwalkers, ndim), or None."""
-    walkers = x_map = None
-    if start is not None:
-        n = s["nwalkers"] or max(32, 4 * post.ndim)
-        n += n % 2
-        if start.shape[0] == n:
-            walkers = start
-        else:  # another ensemble size: start a ball at the previous ensemble's median
-            x_map = np.median(start, axis=0)
-    return sample_posterior(post, seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=s["max_steps"],
-                            check_every=s["check_every"], n_tau=s["n_tau"], tau_rtol=s["tau_rtol"],
-                            backend_path=chain, progress=progress, x_map=x_map, walkers=walkers)
 
 
 def _read_state(path):
@@ -575,11 +306,6 @@ def _reweight(chain, state, post, terms, s, like_options, priors, bounds=None):
     ``(result, None, diagnostics)``
     when the weights are reliable (:class:`swerve.sampling.ImportanceWeights`), else ``(None,
     start, diagnostics)`` with ``start`` walkers drawn from the reweighted samples."""
-    import emcee
-
-    from .likelihood import Likelihood
-    from .sampling import Posterior, SamplerResult, burn_and_thin, importance_weights
-
     b = emcee.backends.HDFBackend(str(chain), read_only=True)
     n_steps = int(b.iteration)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -589,8 +315,6 @@ def _reweight(chain, state, post, terms, s, like_options, priors, bounds=None):
     old = np.flatnonzero(np.isin(terms.ids.astype(str), list(state["stars"])))
     like_old = Likelihood(stars=terms.subset(old), **like_options)
     if bounds is not None:
-        from .adjustment import AdjustedLikelihood
-
         a = state["adjustment"]
         like_old = AdjustedLikelihood(like_old, a["theta_hat"], a["C"], *np.asarray(bounds, dtype=float).T)
     post_old = Posterior(like_old, priors)
@@ -617,8 +341,6 @@ def _reweight(chain, state, post, terms, s, like_options, priors, bounds=None):
 
 def _last_walkers(chain, ndim):
     try:
-        import emcee
-
         b = emcee.backends.HDFBackend(str(chain), read_only=True)
         last = b.get_last_sample().coords
         if last.shape[1] == ndim:
@@ -630,8 +352,6 @@ def _last_walkers(chain, ndim):
 
 def _write_json(path, obj):
     """Strict JSON, atomically (:func:`swerve.fileio.write_json`)."""
-    from .fileio import write_json
-
     write_json(path, obj)
 
 
@@ -667,8 +387,6 @@ STARS_COLUMNS = {
 
 def _summary_table(summary, names, units):
     """summary.ecsv: one row per free parameter, its unit in a column, every column described."""
-    from astropy.table import Table
-
     t = Table()
     pars = summary["parameters"]
     t["parameter"] = list(names)
@@ -687,8 +405,6 @@ def _summary_table(summary, names, units):
 
 def _stars_table(terms, catalog, ll_med, dll_sph, spec):
     """stars.ecsv: every catalog star that reached the fit, used or excluded, in catalog order."""
-    from astropy.table import Table
-
     rows_of = {str(i): int(r) for i, r in zip(catalog.ids, catalog.rows)}
     w = np.exp(terms.log_w)
     used = {
@@ -724,10 +440,6 @@ def _stars_table(terms, catalog, ll_med, dll_sph, spec):
 
 def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog, cfg, emulator_path, emu_hash,
                    solar, meta, priors):
-    import astropy.units as u
-
-    from . import plots
-
     _write_json(out_dir / "summary.json", summary)
     units = dict(zip(like.emulator.parameter_names, getattr(like.emulator, "units", None) or ()))
     units = {n: (str(u.Unit(v)) if v else "") for n, v in units.items()}
@@ -748,8 +460,6 @@ def _write_outputs(out_dir, summary, res, post, like, terms, spec, med, catalog,
                 have_sph = True
     st = _stars_table(terms, catalog, ll_med, ll_med - like.per_star(sph)[0] if have_sph else None, spec)
     if getattr(like, "background", "none") != "none":  # the mixture's memberships (swerve.background)
-        from .background import add_membership_column
-
         add_membership_column(st, like, post, res)
     _atomic_table(st, out_dir / "stars.ecsv")
 
@@ -787,8 +497,6 @@ def _truth_from_meta(meta, names):
 
 def _atomic_table(table, path):
     """An ECSV table, atomically (:func:`swerve.fileio.atomic_path`)."""
-    from .fileio import atomic_path
-
     with atomic_path(path) as tmp:
         table.write(tmp, format="ascii.ecsv", overwrite=True)
 

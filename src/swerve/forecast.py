@@ -1,7 +1,7 @@
 """Survey forecasts: how many stars, at which precision, to tell an oblate from a prolate halo?
 
 For each sample size N, synthetic catalogs of N stars with a survey's errors are drawn at a
-chosen truth and fitted against the emulator (in memory, :func:`swerve.validation.fit_catalog`);
+chosen truth and fitted against the emulator (in memory, by swerve fit's path: :func:`swerve.inference.fit_catalog`);
 reported are the expected posterior widths of q_z and q_y (the median over catalogs of the
 half-width of the 68% central credible interval, with the 16–84% spread over catalogs) and the
 probability of a decisive answer: the fraction of catalogs with P(q_z < 1) > ``threshold``
@@ -18,14 +18,21 @@ Configuration: :data:`FORECAST_SCHEMA` (``swerve forecast --template``).
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
 import time
 from pathlib import Path
 
 import numpy as np
 
-from .config import Key, Schema, Section, load_config
-from .validation import VALIDATE_SCHEMA
+from . import __version__, plots
+from .config import Key, Schema, Section, defaults, load_config, validate
+from .emulate import content_hash, load
+from .fileio import jsonable
+from .measurement import parse_error_model
+from .simulate import training_setup_from_dict
+from .validation import VALIDATE_SCHEMA, draw_catalogs, fit_many, validation_bank, write_json
 
 FORECAST_SCHEMA = Schema("forecast", (
     Section("", (
@@ -47,8 +54,6 @@ FORECAST_SCHEMA = Schema("forecast", (
 
 def load_forecast_config(path=None, overrides: dict | None = None) -> dict:
     """The forecast configuration (defaults when ``path`` is None), top-level keys overridden."""
-    from .config import defaults, validate
-
     cfg = load_config(path, FORECAST_SCHEMA) if path else defaults(FORECAST_SCHEMA)
     if overrides:
         cfg = {k: dict(v) for k, v in cfg.items()}
@@ -85,21 +90,6 @@ def run_forecast(emulator_dir, out_dir, cfg: dict, log=None) -> dict:
     (fraction of catalogs with P(q_z on the true side of 1) > threshold), ``mean_p_true_side``,
     ``converged_fraction``.
     """
-    import hashlib
-    import json
-
-    from . import __version__
-    from .emulate import content_hash, load
-    from .fileio import jsonable
-    from .simulate import training_setup_from_dict
-    from .validation import (
-        draw_catalogs,
-        fit_many,
-        parse_error_model,
-        validation_bank,
-        write_json,
-    )
-
     t0 = time.perf_counter()
     if not Path(emulator_dir).is_dir():
         raise ValueError(f"--emulator: folder {emulator_dir} does not exist")
@@ -165,7 +155,7 @@ def run_forecast(emulator_dir, out_dir, cfg: dict, log=None) -> dict:
             log(f"forecast: N = {n}: q_z 68% half-width {wz:.3f}, decisive in {row.get('p_decisive', float('nan')):.2f}")
     doc = document(t_mark)
     out_dir.mkdir(parents=True, exist_ok=True)
-    plot_forecast(doc, out_dir / "forecast.png")
+    plots.forecast_plot(doc, out_dir / "forecast.png")
     write_json(out_dir / "forecast.json", doc)
     return doc
 
@@ -190,8 +180,6 @@ def _previous_rows(path: Path, key: str) -> dict | None:
     """The document of an earlier forecast of the same settings at ``path`` (None if there is none).
 
     A readable forecast of other settings is a ValueError: it is not overwritten."""
-    import json
-
     if not path.is_file():
         return None
     try:
@@ -202,31 +190,3 @@ def _previous_rows(path: Path, key: str) -> dict | None:
         raise ValueError(f"{path} holds a forecast of other settings (or of an older swerve); "
                          "choose another --out folder")
     return doc
-
-
-def plot_forecast(doc: dict, path):
-    """Posterior half-widths of q_z and q_y against N, and the fraction of decisive catalogs."""
-    from .plots import sample_size_axis, save_figure
-    from .validation import _pyplot
-
-    plt = _pyplot()
-    rows = doc["rows"]
-    n = [r["n_stars"] for r in rows]
-    fig, ax = plt.subplots(1, 2, figsize=(9, 3.6))
-    for q, m in (("q_z", "o-"), ("q_y", "s--")):
-        if all(f"width68_{q}" in r for r in rows):
-            med = np.array([r[f"width68_{q}"]["median"] for r in rows])
-            lo = np.array([r[f"width68_{q}"]["p16"] for r in rows])
-            hi = np.array([r[f"width68_{q}"]["p84"] for r in rows])
-            ax[0].errorbar(n, med, yerr=[med - lo, hi - med], fmt=m, label=q)
-    sample_size_axis(ax[0], n)
-    ax[0].set_ylabel("68% half-width")
-    ax[0].legend()
-    ax[1].plot(n, [r.get("p_decisive", np.nan) for r in rows], "o-")
-    sample_size_axis(ax[1], n)
-    ax[1].set_ylim(0, 1.02)
-    thr = doc["settings"]["config"]["threshold"]
-    ax[1].set_ylabel(f"fraction with P({doc['settings']['side']}) > {thr:g}")
-    fig.suptitle(f"truth q_z = {doc['settings']['truth']['q_z']:g}")
-    fig.tight_layout()
-    save_figure(fig, path, dpi=100)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 
@@ -143,6 +145,125 @@ def posterior_predictive(stars, mu, sig, spec, path):
     return path
 
 
+# ------------------------------------------------------------- validation and forecasts ----
+def accuracy_plots(acc: dict, parameter_names, path_hist, path_map):
+    """z histogram with N(0, 1), RMS per statistic; and worst |z| per point over parameter pairs."""
+    plt = _pyplot()
+    z = acc["z"][np.isfinite(acc["z"])]
+    fig, ax = plt.subplots(1, 2, figsize=(10, 4))
+    x = np.linspace(-5, 5, 200)
+    ax[0].hist(np.clip(z, -5, 5), bins=40, density=True, alpha=0.7, label="held-out z")
+    ax[0].plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k-", label="N(0, 1)")
+    ax[0].set_xlabel("z = (emulated − simulated) / sqrt(σ_emu² + σ_sim²)")
+    ax[0].legend()
+    st = acc["rms_z_by_stat"]
+    ax[1].bar(range(len(st)), list(st.values()))
+    ax[1].axhline(1.0, color="k", ls="--")
+    ax[1].set_xticks(range(len(st)), list(st), rotation=45, ha="right")
+    ax[1].set_ylabel("RMS z")
+    fig.tight_layout()
+    save_figure(fig, path_hist, dpi=100)
+    th = acc["theta"]
+    worst = np.array([w for w, _ in acc["worst"]])
+    d = th.shape[1]
+    pairs = [(a, b) for a in range(d) for b in range(a + 1, d)] or [(0, 0)]
+    fig, axes = plt.subplots(1, len(pairs), figsize=(4 * len(pairs), 3.6), squeeze=False)
+    for ax, (a, b) in zip(axes[0], pairs):
+        sc = ax.scatter(th[:, a], th[:, b], c=worst, cmap="viridis", s=40)
+        ax.set_xlabel(parameter_names[a])
+        ax.set_ylabel(parameter_names[b])
+        fig.colorbar(sc, ax=ax, label="worst |z|")
+    fig.tight_layout()
+    save_figure(fig, path_map, dpi=100)
+
+
+def calibration_plot(cal: dict, path):
+    """Rank histograms per parameter with the 99% band of uniform counts, and coverage."""
+    from scipy.stats import binom
+
+    plt = _pyplot()
+    names = list(cal["parameters"])
+    fig, axes = plt.subplots(1, len(names) + 1, figsize=(3.6 * (len(names) + 1), 3.4), squeeze=False)
+    for ax, n in zip(axes[0], names):
+        h = np.array(cal["parameters"][n]["rank_test"]["histogram"])
+        m = h.sum()
+        lo, hi = binom.ppf([0.005, 0.995], m, 1.0 / len(h))
+        ax.bar(range(len(h)), h, width=1.0, alpha=0.7)
+        ax.axhspan(lo, hi, color="grey", alpha=0.3)
+        ax.set_title(f"{n}: p = {cal['parameters'][n]['rank_test']['chi2_p']:.2g}")
+        ax.set_xlabel("rank bin")
+    ax = axes[0][-1]
+    for k, (key, nom) in enumerate((("coverage68", 0.68), ("coverage95", 0.95))):
+        obs = [cal["parameters"][n][key]["observed"] for n in names]
+        sig = [cal["parameters"][n][key]["sigma"] for n in names]
+        ax.errorbar(np.arange(len(names)) + 0.1 * k, obs, yerr=2 * np.array(sig), fmt="o", label=f"{nom:.0%}")
+        ax.axhline(nom, color=f"C{k}", ls="--")
+    ax.set_xticks(range(len(names)), names)
+    ax.set_ylabel("coverage (±2σ binomial)")
+    ax.legend()
+    fig.tight_layout()
+    save_figure(fig, path, dpi=100)
+
+
+def power_plot(power: dict, path):
+    """Success rate vs N, one panel per error model: swerve and the KS baseline (binomial
+    standard errors as bars; the baseline's points shifted 3% right to keep the bars apart)."""
+    from .validation import binomial_sigma  # validation draws with this module: imported here
+
+    plt = _pyplot()
+    errs = power["errors"]
+    fig, axes = plt.subplots(1, len(errs), figsize=(4.5 * len(errs), 3.6), squeeze=False)
+    for ax, e in zip(axes[0], errs):
+        for case, style in (("axisymmetric", "o-"), ("triaxial", "s:")):
+            rows = [r for r in power["rows"] if r["errors"] == e and r["case"] == case]
+            if not rows:
+                continue
+            n = np.array([r["n_stars"] for r in rows], dtype=float)
+
+            sw = [r["swerve_success"] for r in rows]
+            ax.errorbar(n, sw, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(sw, rows)],
+                        fmt=style, capsize=2, label=f"swerve, {case}")
+            if case == "axisymmetric":
+                ks = [r["ks_success"] for r in rows]
+                ax.errorbar(n * 1.03, ks, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(ks, rows)],
+                            fmt="^--", capsize=2, label="KS baseline, axisymmetric")
+        sample_size_axis(ax, [r["n_stars"] for r in power["rows"]])
+        ax.set_ylim(0, 1.02)
+        ax.set_ylabel("fraction with q_z on the true grid value")
+        ax.set_title(f"errors: {e}")
+        ax.legend(fontsize=8)
+    fig.tight_layout()
+    save_figure(fig, path, dpi=100)
+
+
+# ---------------------------------------------------------------------------- driver --------
+
+
+def forecast_plot(doc: dict, path):
+    """Posterior half-widths of q_z and q_y against N, and the fraction of decisive catalogs."""
+    plt = _pyplot()
+    rows = doc["rows"]
+    n = [r["n_stars"] for r in rows]
+    fig, ax = plt.subplots(1, 2, figsize=(9, 3.6))
+    for q, m in (("q_z", "o-"), ("q_y", "s--")):
+        if all(f"width68_{q}" in r for r in rows):
+            med = np.array([r[f"width68_{q}"]["median"] for r in rows])
+            lo = np.array([r[f"width68_{q}"]["p16"] for r in rows])
+            hi = np.array([r[f"width68_{q}"]["p84"] for r in rows])
+            ax[0].errorbar(n, med, yerr=[med - lo, hi - med], fmt=m, label=q)
+    sample_size_axis(ax[0], n)
+    ax[0].set_ylabel("68% half-width")
+    ax[0].legend()
+    ax[1].plot(n, [r.get("p_decisive", np.nan) for r in rows], "o-")
+    sample_size_axis(ax[1], n)
+    ax[1].set_ylim(0, 1.02)
+    thr = doc["settings"]["config"]["threshold"]
+    ax[1].set_ylabel(f"fraction with P({doc['settings']['side']}) > {thr:g}")
+    fig.suptitle(f"truth q_z = {doc['settings']['truth']['q_z']:g}")
+    fig.tight_layout()
+    save_figure(fig, path, dpi=100)
+
+
 def variants_plot(rows, path):
     """Medians and 68% intervals of the shape parameters, one row per variant."""
     plt = _pyplot()
@@ -163,4 +284,46 @@ def variants_plot(rows, path):
     axes[0][0].set_yticks(y)
     axes[0][0].set_yticklabels([r["variant"] for r in rows], fontsize=8)
     save_figure(fig, path, dpi=110)
+    return path
+
+
+def trace_plot(result, path):
+    """Flight time against heliocentric distance, coloured by the origin probability
+    (:class:`swerve.trace.TraceResult`); with the LMC a second panel for the LMC origin.
+
+    Stars with at least one passing path are drawn with their 16-84% flight-time interval; the
+    number of stars with none is written in the corner of each panel. The format comes from the
+    extension of ``path``, which is written atomically.
+    """
+    plt = _pyplot()
+    d = result.distance if result.distance is not None else result.r_gc
+    meta = result.meta
+    panels = [("Galactic Centre", result.p_origin, result.t_flight, result.t_flight_lo, result.t_flight_hi,
+               f"P(path within {meta.get('radius_kpc', float('nan')):g} kpc of the Galactic Centre)")]
+    if result.has_lmc:
+        panels.append(("LMC", result.p_lmc, result.t_flight_lmc, result.t_flight_lmc_lo, result.t_flight_lmc_hi,
+                       f"P(path within {meta.get('lmc_radius_kpc', float('nan')):g} kpc of the LMC's centre)"))
+    fig, axes = plt.subplots(1, len(panels), figsize=(6.4 * len(panels), 4.6), constrained_layout=True,
+                             squeeze=False)
+    for ax, (origin, p, t_f, lo, hi, label) in zip(axes[0], panels):
+        has = np.isfinite(t_f)
+        if has.any():
+            t = t_f[has]
+            ax.errorbar(d[has], t, yerr=[t - lo[has], hi[has] - t], fmt="none", ecolor="0.6", elinewidth=0.7,
+                        zorder=1)
+            sc = ax.scatter(d[has], t, c=p[has], cmap="viridis", vmin=0.0, vmax=1.0, s=22, edgecolors="k",
+                            linewidths=0.3, zorder=2)
+            fig.colorbar(sc, ax=ax, label=label)
+        ax.set_title(f"{origin} origin: {int(has.sum())} stars with a passing path, {int(np.sum(~has))} with none "
+                     "(not shown)", fontsize=8)
+        ax.set_xlabel("heliocentric distance [kpc]" if result.distance is not None else "Galactocentric radius [kpc]")
+        ax.set_ylabel(f"time since closest approach to the {origin} [Myr]")
+        ax.grid(alpha=0.3)
+    galaxy = meta.get("galaxy", {}).get("name", "")
+    with_lmc = ""
+    if result.has_lmc:
+        with_lmc = f" + LMC {meta.get('lmc', {}).get('lmc', {}).get('m_lmc', float('nan')):.3g} Msun"
+    fig.suptitle(f"swerve trace ({galaxy}{with_lmc}, {meta.get('samples_per_star', '?')} samples per star)",
+                 fontsize=9)
+    save_figure(fig, path, dpi=120)
     return path

@@ -15,7 +15,8 @@ calibration
     drawn uniformly within its bounds per catalog (held-out Galaxy points are a space-filling
     design of the bounds, so the truths are close to draws from the uniform prior, as
     simulation-based calibration needs). Each is fitted in memory
-    (:func:`fit_catalog`); simulation-based calibration ranks (Talts et al. 2018,
+    (:func:`swerve.inference.fit_catalog`, the path swerve fit runs, with its defaults);
+    simulation-based calibration ranks (Talts et al. 2018,
     arXiv 1804.06788) and the coverage of the 68% / 95% central credible intervals, with
     binomial error bars and a pass/fail (:func:`coverage_test`, :func:`rank_test`).
 power
@@ -39,6 +40,7 @@ runs single-threaded to avoid oversubscription.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import time
@@ -46,33 +48,75 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from joblib import Parallel, delayed
+from scipy.stats import chisquare
 
-from .config import Key, Schema, Section, load_config, validate
-from .fileio import write_text
-from .plots import save_figure
+from . import __version__, inference, plots
+from .bank import build_bank
+from .baseline import ks_choice, observed_v_theta_folded
+from .catalog import catalog_from_table
+from .config import Key, Schema, Section, config_hash, defaults, load_config, validate
+from .emulate import content_hash, load
+from .fileio import jsonable, write_text
+from .fit import FIT_SCHEMA, load_fit_config
+from .measurement import ERROR_FREE, parse_error_model  # noqa: F401  (re-exported: swerve.validation.parse_error_model)
+from .population import make_mock
+from .sampling import ConvergenceWarning
+from .simulate import simulation_hash, training_setup_from_dict, training_table
+from .summaries import N_STAT, STAT_NAMES
+from .training import collect, run_status
 
 # --------------------------------------------------------------------------- configuration --
+#: the ``[fit]`` keys of a validation (and forecast) configuration -> swerve fit's (section, key):
+#: every catalog is fitted by swerve fit's own path (:mod:`swerve.inference`) with swerve fit's
+#: defaults, and a key given here overrides that one setting
+FIT_KEYS = {
+    "samples": ("errors", "samples"),
+    "distance_method": ("errors", "method"),
+    "nwalkers": ("sampler", "nwalkers"),
+    "max_steps": ("sampler", "max_steps"),
+    "check_every": ("sampler", "check_every"),
+    "n_tau": ("sampler", "n_tau"),
+    "tau_rtol": ("sampler", "tau_rtol"),
+    "sampler": ("sampler", "method"),
+    "laplace_min_stars": ("sampler", "laplace_min_stars"),
+    "velocity_floor": ("emulator", "velocity_floor"),
+    "emulator_error": ("emulator", "error"),
+    "adjust": ("likelihood", "adjust"),
+    "background": ("likelihood", "background"),
+}
+
+
+def _fit_keys() -> tuple:
+    """swerve fit's keys (type, range, default, doc) under their flat names."""
+    return tuple(dataclasses.replace(FIT_SCHEMA.section(sec).key(key), name=flat)
+                 for flat, (sec, key) in FIT_KEYS.items())
+
+
+def fit_config(fit: dict, seed: int, priors: dict | None = None, solar: str = "v4.0") -> dict:
+    """swerve fit's configuration for one validation or forecast fit: its defaults, the
+    ``[fit]`` section's settings (:data:`FIT_KEYS`), ``seed`` for the star samples and the
+    sampler, per-parameter ``priors`` and the solar parameters."""
+    unknown = set(fit) - set(FIT_KEYS) - {"n_draws"}
+    if unknown:
+        raise ValueError(f"[fit]: unknown key(s) {sorted(unknown)}; expected some of {sorted(FIT_KEYS)} or n_draws")
+    over = {"errors": {"seed": int(seed)}, "sampler": {"seed": int(seed)}, "frame": {"solar": solar},
+            "priors": {"parameters": dict(priors or {})}}
+    for flat, (sec, key) in FIT_KEYS.items():
+        if flat in fit:
+            over.setdefault(sec, {})[key] = fit[flat]
+    return load_fit_config(None, over)
+
+
 VALIDATE_SCHEMA = Schema("validate", (
     Section("", (
         Key("seed", "int", 1, min=0, doc="master seed of every random draw"),
         Key("n_jobs", "int", 2, min=1, doc="worker processes for the fits"),
         Key("solar", "str", "v4.0", doc="solar-parameter set of the mock catalogs and the fits"),
     )),
-    Section("fit", (
-        Key("samples", "int", 16, min=1, doc="distance samples per star (importance sampling)"),
-        Key("nwalkers", "int", 32, min=4, doc="emcee walkers"),
-        Key("max_steps", "int", 2000, min=50, doc="step cap of each fit"),
-        Key("check_every", "int", 250, min=10, doc="steps between autocorrelation checks"),
-        Key("n_tau", "float", 25.0, min=1.0, doc="converged when longer than n_tau x tau ..."),
-        Key("tau_rtol", "float", 0.1, min=0.0, doc="... and tau changed by less than this fraction"),
+    Section("fit", _fit_keys() + (
         Key("n_draws", "int", 99, min=3, doc="posterior draws kept per fit for the ranks"),
-        Key("velocity_floor", "float", 1.0, min=0.0, doc="km/s added in quadrature to the emulated cell dispersions "
-                                                          "(swerve fit's [emulator] velocity_floor)"),
-        Key("emulator_error", "str", "catalog", choices=("catalog", "per-star", "none"),
-            doc="the emulator's error of the cell means: marginalised per catalog, folded per star, or ignored"),
-        Key("adjust", "bool", True, doc="widen the likelihood by its curvature adjustment at the maximum "
-                                         "(swerve.adjustment; swerve fit's [likelihood] adjust)"),
-    ), doc="the in-memory fits"),
+    ), doc="the fits: swerve fit's settings under flat names, with swerve fit's defaults (FIT_KEYS)"),
     Section("bank", (
         Key("n_orbits", "int", 0, min=0, doc="orbits per validation bank (0: the training configuration's)"),
     ), doc="trajectory banks of the held-out and grid Galaxies"),
@@ -105,8 +149,6 @@ VALIDATE_SCHEMA = Schema("validate", (
 
 def load_validate_config(path=None) -> dict:
     """The validation configuration from a TOML file (defaults when ``path`` is None)."""
-    from .config import defaults
-
     cfg = load_config(path, VALIDATE_SCHEMA) if path else defaults(VALIDATE_SCHEMA)
     return _finish_config(cfg, path or "<defaults>")
 
@@ -119,70 +161,6 @@ def _finish_config(cfg: dict, source) -> dict:
         raise ValueError(f"{source}: [calibration] rank_bins = {c['rank_bins']} must divide "
                          f"[fit] n_draws + 1 = {cfg['fit']['n_draws'] + 1}")
     return cfg
-
-
-# ---------------------------------------------------------------------------- error models --
-#: the "error-free" model: errors far below the signal (swerve.population.ErrorModel needs σ > 0)
-ERROR_FREE = {"distance_frac": 1e-4, "pm": 1e-5, "vlos": 0.01}
-
-_ERR_KEYS = {"pm": "pm", "vlos": "vlos", "dist": "distance_frac", "plx": "parallax", "corr": "corr_pmra_pmdec"}
-
-
-def parse_error_model(text):
-    """An :class:`~swerve.population.ErrorModel` from a string or a TOML file.
-
-    Forms:
-
-    * ``"pm=0.02,vlos=5,dist=0.1"``: proper-motion error (mas/yr), line-of-sight velocity
-      error (km/s), fractional distance error; optional ``plx=`` (parallax error, mas) and
-      ``corr=`` (pmra–pmdec correlation). A value ``A:B:P`` is the distance law
-      σ(d) = A + B (d/10 kpc)^P (e.g. ``pm=0:0.01:1``). Without ``dist`` and ``plx``,
-      ``dist=0.1``; without ``pm``, 0.02 mas/yr; without ``vlos``, 5 km/s.
-    * ``"none"``: error-free (σ_pm = 1e-5 mas/yr, σ_vlos = 0.01 km/s, 0.01% distances).
-    * ``PATH.toml``: keys ``pm``, ``vlos``, ``distance_frac``, ``parallax`` (numbers or
-      ``[A, B, P]``), ``corr_pmra_pmdec``.
-    """
-    from .population import ErrorModel
-
-    if isinstance(text, ErrorModel):
-        return text
-    s = str(text).strip()
-    if s.lower() == "none":
-        return ErrorModel(**ERROR_FREE)
-    if s.endswith(".toml"):
-        try:
-            import tomllib
-        except ModuleNotFoundError:  # pragma: no cover
-            import tomli as tomllib  # type: ignore[no-redef]
-        if not os.path.isfile(s):
-            raise ValueError(f"errors: file {s} does not exist")
-        try:
-            with open(s, "rb") as fh:
-                d = tomllib.load(fh)
-            return ErrorModel.from_dict(d)
-        except (tomllib.TOMLDecodeError, TypeError) as exc:
-            raise ValueError(f"errors: {s}: {str(exc).splitlines()[0]}") from None
-    kw = {}
-    for item in s.split(","):
-        name, sep, value = item.partition("=")
-        name = name.strip()
-        if not sep or name not in _ERR_KEYS:
-            raise ValueError(f"errors: {item.strip()!r} in {s!r}: expected NAME=VALUE with NAME one of "
-                             f"{', '.join(_ERR_KEYS)} (e.g. pm=0.02,vlos=5,dist=0.1), 'none' or a .toml file")
-        try:
-            parts = [float(v) for v in value.split(":")]
-        except ValueError:
-            raise ValueError(f"errors: {item.strip()!r}: {value!r} is not a number or A:B:P") from None
-        key = _ERR_KEYS[name]
-        if key == "corr_pmra_pmdec":
-            kw[key] = parts[0]
-        else:
-            kw[key] = parts[0] if len(parts) == 1 else parts
-    if "distance_frac" not in kw and "parallax" not in kw:
-        kw["distance_frac"] = 0.1
-    kw.setdefault("pm", 0.02)
-    kw.setdefault("vlos", 5.0)
-    return ErrorModel(**kw)
 
 
 # ---------------------------------------------------------------------------- statistics ----
@@ -235,8 +213,6 @@ def rank_test(ranks, n_draws: int, n_bins: int, p_min: float = 0.01) -> dict:
     n_bins : int
         Histogram bins; must divide n_draws + 1.
     """
-    from scipy.stats import chisquare
-
     if (n_draws + 1) % n_bins:
         raise ValueError(f"rank_bins: {n_bins} must divide n_draws + 1 = {n_draws + 1}")
     ranks = np.asarray(ranks, dtype=int)
@@ -261,9 +237,6 @@ def emulator_accuracy(emulator, setup, theta_gal, outputs) -> dict:
     dict: ``z`` (n_rows, n_outputs) array, ``theta`` (n_rows, d) inputs, ``rms_z``,
     ``rms_z_by_stat``, ``fraction_abs_z_gt_3``, ``worst`` per row (|z|, output name).
     """
-    from .simulate import training_table
-    from .summaries import N_STAT, STAT_NAMES
-
     X, Y, V = training_table(setup, theta_gal, outputs)
     pred, sd = emulator.predict(X, return_std=True)
     z = (np.asarray(pred) - Y) / np.sqrt(np.asarray(sd) ** 2 + V)
@@ -291,88 +264,49 @@ _EMULATORS: dict = {}
 
 
 def _emulator(path):
-    from .emulate import load
-
     key = os.fspath(path)
     if key not in _EMULATORS:
         _EMULATORS[key] = load(key)
     return _EMULATORS[key]
 
 
-def fit_catalog(emulator, spec, table, fit_cfg: dict, seed: int, priors: dict | None = None, solar="v4.0") -> dict:
-    """Fit one catalog (astropy Table in catalog columns) against an emulator, in memory.
-
-    Parameters
-    ----------
-    emulator : GPEmulator
-    spec : SummarySpec
-    table : astropy.table.Table
-        E.g. from :func:`swerve.population.make_mock`.
-    fit_cfg : dict
-        The ``[fit]`` section of :data:`VALIDATE_SCHEMA`.
-    seed : int
-        Seeds the distance samples and the sampler.
-    priors : dict, optional
-        Per-parameter priors (:func:`swerve.sampling.resolve_priors`).
-
-    Returns
-    -------
-    dict: ``names`` (free parameters), ``median``, ``lo68``, ``hi68``, ``lo95``, ``hi95``
-    (arrays over ``names``), ``draws`` (n_draws, n_free), ``p_below_1`` (per name, P(θ<1)),
-    ``converged``, ``n_steps``, ``tau``, ``n_stars``, ``seconds``.
-    """
-    from .catalog import catalog_from_table, draw_samples
-    from .likelihood import DEFAULT_VELOCITY_FLOOR, Likelihood, prepare_stars
-    from .sampling import (
-        ConvergenceWarning,
-        Posterior,
-        resolve_priors,
-        sample_posterior,
-    )
-
-    t0 = time.perf_counter()
-    rng = np.random.default_rng(seed)
-    cat = catalog_from_table(table, source="mock catalog")
-    smp = draw_samples(cat, fit_cfg["samples"], rng, solar=solar)
-    method = fit_cfg.get("method", "smoothed")  # swerve fit's default
-    if method in ("linear", "smoothed"):
-        from .likelihood import linearised_samples, smoothed_samples
-
-        smp = (linearised_samples if method == "linear" else smoothed_samples)(cat, smp, solar)
-    stars = prepare_stars(cat, smp, spec, solar=solar)
-    like = Likelihood(emulator, stars, spec, velocity_floor=fit_cfg.get("velocity_floor", DEFAULT_VELOCITY_FLOOR),
-                      emulator_error=fit_cfg.get("emulator_error", "catalog"))
-    post = Posterior(like, resolve_priors(emulator.parameter_names, emulator.bounds, priors))
-    x_map = None
-    if fit_cfg.get("adjust"):
-        from .adjustment import adjusted_posterior
-
-        post, x_map, _, _ = adjusted_posterior(post, like, emulator.bounds, rng)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        res = sample_posterior(post, seed=int(rng.integers(2 ** 31)), nwalkers=fit_cfg["nwalkers"],
-                               max_steps=fit_cfg["max_steps"], check_every=fit_cfg["check_every"],
-                               n_tau=fit_cfg["n_tau"], tau_rtol=fit_cfg["tau_rtol"], x_map=x_map)
-    s = res.samples
-    q = np.percentile(s, [2.5, 16, 50, 84, 97.5], axis=0)
-    pick = rng.choice(len(s), size=fit_cfg["n_draws"], replace=len(s) < fit_cfg["n_draws"])
-    return {"names": list(res.names), "median": q[2], "lo68": q[1], "hi68": q[3], "lo95": q[0], "hi95": q[4],
-            "draws": s[pick], "p_below_1": {n: float(np.mean(s[:, j] < 1.0)) for j, n in enumerate(res.names)},
-            "converged": bool(res.converged), "n_steps": int(res.n_steps), "tau": res.tau.tolist(),
-            "n_stars": int(stars.n), "seconds": time.perf_counter() - t0}
+def fit_record(fr: inference.FitResult, n_draws: int, seed: int) -> dict:
+    """What the harness keeps of one fit (:func:`swerve.inference.fit_catalog`): ``names`` (free
+    parameters), ``median``, ``lo68``, ``hi68``, ``lo95``, ``hi95`` (arrays over ``names``, from the
+    fit's summary), ``draws`` (``n_draws`` posterior draws, by the samples' weights where
+    importance-weighted), ``p_below_1`` (per name, P(θ<1)), ``converged``, ``n_steps``, ``tau``,
+    ``method``, ``n_stars``, ``seconds``."""
+    res, pars = fr.result, fr.summary["parameters"]
+    names = list(res.names)
+    col = {k: np.array([pars[n][key] if j is None else pars[n][key][j] for n in names])
+           for k, key, j in (("median", "median", None), ("lo68", "ci68", 0), ("hi68", "ci68", 1),
+                             ("lo95", "ci95", 0), ("hi95", "ci95", 1))}
+    w = res.weights
+    n_distinct = len(res.samples) if w is None else int(np.count_nonzero(w))
+    rng = np.random.default_rng([seed, 2])
+    pick = rng.choice(len(res.samples), size=n_draws, replace=n_distinct < n_draws, p=w)
+    wt = np.full(len(res.samples), 1.0 / len(res.samples)) if w is None else w
+    return {"names": names, **col, "draws": res.samples[pick],
+            "p_below_1": {n: float(np.sum(wt * (res.samples[:, j] < 1.0))) for j, n in enumerate(names)},
+            "converged": bool(res.converged), "n_steps": int(res.n_steps), "tau": np.asarray(res.tau).tolist(),
+            "method": fr.summary["sampler"]["method"], "n_stars": int(fr.problem.terms.n), "seconds": fr.seconds}
 
 
 def _fit_task(emulator_dir, table, fit_cfg, seed, priors, solar, single_thread):
+    """One catalog through swerve fit's path (:func:`swerve.inference.fit_catalog`)."""
     if single_thread:
         import numba
 
         numba.set_num_threads(1)
-    from .summaries import SummarySpec
-
     emu = _emulator(emulator_dir)
-    spec = SummarySpec.from_dict(emu.metadata["summaries"])
     try:
-        return fit_catalog(emu, spec, table, fit_cfg, seed, priors=priors, solar=solar)
+        cfg = fit_config(fit_cfg, seed, priors, solar)
+        cat = catalog_from_table(table, source="mock catalog")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)  # counted in converged_fraction
+            warnings.simplefilter("ignore", inference.FewStarsWarning)
+            fr = inference.fit_catalog(cat, emu, cfg)
+        return fit_record(fr, fit_cfg["n_draws"], seed)
     except ValueError as exc:  # e.g. no usable star: reported, not fatal
         return {"error": str(exc).splitlines()[0]}
 
@@ -381,8 +315,6 @@ def fit_many(emulator_dir, tasks, fit_cfg, n_jobs: int = 1, solar="v4.0") -> lis
     """Fit many catalogs: ``tasks`` is a list of (table, seed, priors); joblib over catalogs."""
     if n_jobs <= 1 or len(tasks) <= 1:
         return [_fit_task(emulator_dir, t, fit_cfg, s, p, solar, False) for t, s, p in tasks]
-    from joblib import Parallel, delayed
-
     return Parallel(n_jobs=n_jobs, backend="loky")(
         delayed(_fit_task)(emulator_dir, t, fit_cfg, s, p, solar, True) for t, s, p in tasks)
 
@@ -390,8 +322,6 @@ def fit_many(emulator_dir, tasks, fit_cfg, n_jobs: int = 1, solar="v4.0") -> lis
 # ---------------------------------------------------------------------------- mocks --------
 def validation_bank(setup, galaxy, seed: int, n_orbits: int = 0):
     """One trajectory bank of ``galaxy`` with the training configuration's settings."""
-    from .bank import build_bank
-
     b = setup.cfg["bank"]
     return build_bank(galaxy, int(n_orbits or b["n_orbits"]), int(seed), t_max=setup.flight_time_max, dt=b["dt"],
                       v_lo=b["v_lo"], v_hi=b["v_hi"], r_min_store=setup.spec.r_edges[0],
@@ -405,8 +335,6 @@ def draw_catalogs(setup, galaxy, launch, bank, error_model, n_stars: int, n_cata
     population, each with independent errors, so one mock of ``n_catalogs × n_stars`` split in
     blocks is ``n_catalogs`` independent mocks. Returns (list of Tables, n_low_ess_warnings).
     """
-    from .population import make_mock
-
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         big = make_mock(galaxy, launch, setup.selection, error_model, int(n_stars * n_catalogs), rng, bank=bank,
@@ -421,10 +349,6 @@ def check_inputs(emulator_dir, held_out_dir):
 
     Returns (emulator, setup, names, theta_gal, outputs).
     """
-    from .emulate import load
-    from .simulate import training_setup_from_dict
-    from .training import collect, run_status
-
     held_out_dir = Path(held_out_dir)
     if not held_out_dir.is_dir():
         raise ValueError(f"--held-out: folder {held_out_dir} does not exist")
@@ -439,9 +363,6 @@ def check_inputs(emulator_dir, held_out_dir):
     # the emulator's configuration as recorded, and as today's schema reads it (options added
     # since, at their defaults, do not change the training), in full (run folders made before
     # swerve 0.1's simulation hash) or without [emulator] (made since): swerve train hashes the latter
-    from .config import config_hash
-    from .simulate import simulation_hash
-
     if status.config_hash not in (meta.get("config_hash"), config_hash(setup.cfg), simulation_hash(setup.cfg)):
         raise ValueError(f"--held-out: {held_out_dir} was made with another training configuration "
                          f"(hash {status.config_hash[:12]}) than the emulator's ({str(meta.get('config_hash'))[:12]})")
@@ -538,9 +459,6 @@ def _nearest(grid, x):
 
 def run_power(emulator_dir, emu, setup, cfg, rng, log=None) -> dict:
     """Success rate against sample size, swerve and the KS baseline side by side (module docstring)."""
-    from .baseline import ks_choice, observed_v_theta_folded
-    from .catalog import catalog_from_table
-
     p, f = cfg["power"], cfg["fit"]
     grid = power_grid(emu, p["q_z_grid"])
     names = list(emu.parameter_names)
@@ -633,109 +551,7 @@ def power_table(power: dict) -> str:
 
 
 # ---------------------------------------------------------------------------- figures -------
-def _pyplot():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
-
-
-def plot_accuracy(acc: dict, parameter_names, path_hist, path_map):
-    """z histogram with N(0, 1), RMS per statistic; and worst |z| per point over parameter pairs."""
-    plt = _pyplot()
-    z = acc["z"][np.isfinite(acc["z"])]
-    fig, ax = plt.subplots(1, 2, figsize=(10, 4))
-    x = np.linspace(-5, 5, 200)
-    ax[0].hist(np.clip(z, -5, 5), bins=40, density=True, alpha=0.7, label="held-out z")
-    ax[0].plot(x, np.exp(-0.5 * x * x) / math.sqrt(2 * math.pi), "k-", label="N(0, 1)")
-    ax[0].set_xlabel("z = (emulated − simulated) / sqrt(σ_emu² + σ_sim²)")
-    ax[0].legend()
-    st = acc["rms_z_by_stat"]
-    ax[1].bar(range(len(st)), list(st.values()))
-    ax[1].axhline(1.0, color="k", ls="--")
-    ax[1].set_xticks(range(len(st)), list(st), rotation=45, ha="right")
-    ax[1].set_ylabel("RMS z")
-    fig.tight_layout()
-    save_figure(fig, path_hist, dpi=100)
-    th = acc["theta"]
-    worst = np.array([w for w, _ in acc["worst"]])
-    d = th.shape[1]
-    pairs = [(a, b) for a in range(d) for b in range(a + 1, d)] or [(0, 0)]
-    fig, axes = plt.subplots(1, len(pairs), figsize=(4 * len(pairs), 3.6), squeeze=False)
-    for ax, (a, b) in zip(axes[0], pairs):
-        sc = ax.scatter(th[:, a], th[:, b], c=worst, cmap="viridis", s=40)
-        ax.set_xlabel(parameter_names[a])
-        ax.set_ylabel(parameter_names[b])
-        fig.colorbar(sc, ax=ax, label="worst |z|")
-    fig.tight_layout()
-    save_figure(fig, path_map, dpi=100)
-
-
-def plot_calibration(cal: dict, path):
-    """Rank histograms per parameter with the 99% band of uniform counts, and coverage."""
-    from scipy.stats import binom
-
-    plt = _pyplot()
-    names = list(cal["parameters"])
-    fig, axes = plt.subplots(1, len(names) + 1, figsize=(3.6 * (len(names) + 1), 3.4), squeeze=False)
-    for ax, n in zip(axes[0], names):
-        h = np.array(cal["parameters"][n]["rank_test"]["histogram"])
-        m = h.sum()
-        lo, hi = binom.ppf([0.005, 0.995], m, 1.0 / len(h))
-        ax.bar(range(len(h)), h, width=1.0, alpha=0.7)
-        ax.axhspan(lo, hi, color="grey", alpha=0.3)
-        ax.set_title(f"{n}: p = {cal['parameters'][n]['rank_test']['chi2_p']:.2g}")
-        ax.set_xlabel("rank bin")
-    ax = axes[0][-1]
-    for k, (key, nom) in enumerate((("coverage68", 0.68), ("coverage95", 0.95))):
-        obs = [cal["parameters"][n][key]["observed"] for n in names]
-        sig = [cal["parameters"][n][key]["sigma"] for n in names]
-        ax.errorbar(np.arange(len(names)) + 0.1 * k, obs, yerr=2 * np.array(sig), fmt="o", label=f"{nom:.0%}")
-        ax.axhline(nom, color=f"C{k}", ls="--")
-    ax.set_xticks(range(len(names)), names)
-    ax.set_ylabel("coverage (±2σ binomial)")
-    ax.legend()
-    fig.tight_layout()
-    save_figure(fig, path, dpi=100)
-
-
-def plot_power(power: dict, path):
-    """Success rate vs N, one panel per error model: swerve and the KS baseline (binomial
-    standard errors as bars; the baseline's points shifted 3% right to keep the bars apart)."""
-    from .plots import sample_size_axis
-
-    plt = _pyplot()
-    errs = power["errors"]
-    fig, axes = plt.subplots(1, len(errs), figsize=(4.5 * len(errs), 3.6), squeeze=False)
-    for ax, e in zip(axes[0], errs):
-        for case, style in (("axisymmetric", "o-"), ("triaxial", "s:")):
-            rows = [r for r in power["rows"] if r["errors"] == e and r["case"] == case]
-            if not rows:
-                continue
-            n = np.array([r["n_stars"] for r in rows], dtype=float)
-
-            sw = [r["swerve_success"] for r in rows]
-            ax.errorbar(n, sw, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(sw, rows)],
-                        fmt=style, capsize=2, label=f"swerve, {case}")
-            if case == "axisymmetric":
-                ks = [r["ks_success"] for r in rows]
-                ax.errorbar(n * 1.03, ks, yerr=[binomial_sigma(p, r["n_catalogs"]) for p, r in zip(ks, rows)],
-                            fmt="^--", capsize=2, label="KS baseline, axisymmetric")
-        sample_size_axis(ax, [r["n_stars"] for r in power["rows"]])
-        ax.set_ylim(0, 1.02)
-        ax.set_ylabel("fraction with q_z on the true grid value")
-        ax.set_title(f"errors: {e}")
-        ax.legend(fontsize=8)
-    fig.tight_layout()
-    save_figure(fig, path, dpi=100)
-
-
-# ---------------------------------------------------------------------------- driver --------
 def _jsonable(o):
-    from .fileio import jsonable
-
     return jsonable(o)
 
 
@@ -763,9 +579,6 @@ def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> 
                      n_catalogs, swerve_success, swerve_success_by_q_z, ks_success,
                      ks_success_by_q_z (axisymmetric only), converged_fraction}]
     """
-    from . import __version__
-    from .emulate import content_hash
-
     t_all = time.perf_counter()
     emu, setup, _names, theta, outputs = check_inputs(emulator_dir, held_out_dir)
     out_dir = Path(out_dir)
@@ -780,7 +593,7 @@ def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> 
     t0 = time.perf_counter()
     if cfg["accuracy"]["enabled"]:
         acc = emulator_accuracy(emu, setup, theta, outputs)
-        plot_accuracy(acc, list(emu.parameter_names), out_dir / "accuracy.png", out_dir / "accuracy_map.png")
+        plots.accuracy_plots(acc, list(emu.parameter_names), out_dir / "accuracy.png", out_dir / "accuracy_map.png")
         doc["settings"]["figures"] += ["accuracy.png", "accuracy_map.png"]
         L = outputs["values"].shape[1]
         doc["accuracy"] = {
@@ -797,7 +610,7 @@ def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> 
     if cfg["calibration"]["enabled"]:
         cal = run_calibration(emulator_dir, emu, setup, theta, cfg, np.random.default_rng(s_cal), log=log)
         if cal["n_fitted"]:
-            plot_calibration(cal, out_dir / "calibration.png")
+            plots.calibration_plot(cal, out_dir / "calibration.png")
             doc["settings"]["figures"].append("calibration.png")
         doc["calibration"] = cal
     else:
@@ -806,7 +619,7 @@ def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> 
     t0 = time.perf_counter()
     if cfg["power"]["enabled"]:
         pw = run_power(emulator_dir, emu, setup, cfg, np.random.default_rng(s_pow), log=log)
-        plot_power(pw, out_dir / "power.png")
+        plots.power_plot(pw, out_dir / "power.png")
         write_text(out_dir / "power.md", power_table(pw) + "\n")
         doc["settings"]["figures"].append("power.png")
         doc["power"] = pw

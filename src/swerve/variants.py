@@ -29,9 +29,17 @@ more than the first variant's 68% half-width.
 from __future__ import annotations
 
 import re
+import shutil
 from pathlib import Path
 
 import numpy as np
+from astropy.table import Table
+from joblib import Parallel, delayed
+
+from . import plots
+from .config import validate
+from .fileio import atomic_path, did_you_mean
+from .fit import FIT_SCHEMA, run_fit
 
 try:
     import tomllib
@@ -44,8 +52,6 @@ SHAPE = ("q_y", "q_z", "m_halo", "m_disk")
 
 def read_variants(path) -> list[dict]:
     """Parse and check a variants file (names unique, only known sections)."""
-    from .fileio import did_you_mean
-
     try:
         with open(path, "rb") as fh:
             doc = tomllib.load(fh)
@@ -77,9 +83,6 @@ def slug(name: str) -> str:
 
 
 def _merge(cfg: dict, variant: dict) -> dict:
-    from .config import validate
-    from .fit import FIT_SCHEMA
-
     merged = {k: dict(v) for k, v in cfg.items()}
     for sec, vals in variant.items():
         if sec in ("name", "emulator"):
@@ -95,8 +98,6 @@ def _merge(cfg: dict, variant: dict) -> dict:
 
 def _one(args):
     catalog, emulator, out, cfg, name = args
-    from .fit import run_fit
-
     outcome = run_fit(catalog, emulator, out, cfg, progress=False)
     return name, str(emulator), outcome.summary
 
@@ -111,11 +112,6 @@ def classify(p_less_than_one: float) -> str:
 
 def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, overrides=None) -> str:
     """Fit every variant (in parallel with ``jobs``), write the comparison, return its text."""
-    from astropy.table import Table
-    from joblib import Parallel, delayed
-
-    from . import plots
-
     vs = read_variants(variants_path)
     out = Path(out)
     if out.exists() and not out.is_dir():
@@ -135,8 +131,6 @@ def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, over
         results = Parallel(n_jobs=jobs)(delayed(_one)(t) for t in tasks)
     except Exception:
         if created:  # a failed run leaves nothing behind
-            import shutil
-
             shutil.rmtree(out, ignore_errors=True)
         raise
 
@@ -157,8 +151,6 @@ def run_variants(catalog, emulator, out, cfg, variants_path, jobs: int = 1, over
     flags = _flags(rows)
     t = Table(rows=rows)
     t.meta = {"flags": flags, "catalog": str(catalog)}
-    from .fileio import atomic_path
-
     with atomic_path(out / "variants.ecsv") as tmp:
         t.write(tmp, format="ascii.ecsv", overwrite=True)
     plots.variants_plot(rows, out / "variants.png")

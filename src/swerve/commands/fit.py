@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from ..config import template
 from ._common import (
     EXIT_OK,
     METAVAR,
@@ -58,7 +59,7 @@ _OPTION_KEYS = {"--seed": ("sampler", "seed", "seed"), "--max-steps": ("sampler"
 
 
 def _add_distance_options(p):
-    from ..catalog import DISTANCE_PRIORS
+    from ..measurement import DISTANCE_PRIORS  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     p.add_argument("--distance-prior", default=None, choices=DISTANCE_PRIORS,
                    help="distance prior of stars whose distance comes from the parallax (overrides [errors] "
@@ -80,7 +81,7 @@ def _distance_overrides(args, o: dict) -> None:
 
 
 def _overrides(args) -> dict:
-    from ..fit import FIT_SCHEMA
+    from ..fit import FIT_SCHEMA  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     for option, (section, key, attr) in _OPTION_KEYS.items():  # each named by its flag when wrong
         check_option(option, getattr(args, attr), FIT_SCHEMA, section, key)
@@ -102,8 +103,7 @@ def _overrides(args) -> dict:
 
 
 def run(args) -> int:
-    from ..config import template
-    from ..fit import FIT_SCHEMA, load_fit_config, run_fit
+    from ..fit import FIT_SCHEMA, load_fit_config, run_fit  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     if args.template:
         print(template(FIT_SCHEMA))
@@ -119,7 +119,7 @@ def run(args) -> int:
         raise CommandError(f"--out {out}: a file is there; expected a run folder (new or of an earlier fit)")
     cfg = load_fit_config(args.config, _overrides(args))
     if args.variants:
-        from ..variants import run_variants
+        from ..variants import run_variants  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
         text = run_variants(args.catalog, emulator, out, cfg, args.variants, jobs=args.jobs,
                             overrides=_overrides(args))

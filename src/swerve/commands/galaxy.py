@@ -39,7 +39,7 @@ def add_parser(sub):
 
 
 def _lmc_summary(galaxy, args) -> dict:
-    from ..galaxy.lmc import LMC, lmc_summary
+    from ..galaxy.lmc import LMC, lmc_summary  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     lmc = LMC() if args.lmc_mass is None else LMC(m_lmc=args.lmc_mass)
     return lmc_summary(galaxy, lmc)
@@ -63,8 +63,8 @@ def _print_lmc(s: dict) -> None:
 
 
 def run(args) -> int:
-    from ..galaxy import DEFAULT_GALAXY, GALAXY_MODELS, Galaxy
-    from ..galaxy.measurements import MEASUREMENTS
+    from ..galaxy import DEFAULT_GALAXY, GALAXY_MODELS, Galaxy  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..galaxy.measurements import MEASUREMENTS  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     try:
         radii = [float(x) for x in args.radii.split(",") if x.strip()]
@@ -127,7 +127,7 @@ def run(args) -> int:
             print(f"  WARNING: the potential-flattened halo's density is negative beyond r = {region['r']:.1f} kpc"
                   f" (along the {region['axis']} axis, m = {region['m_over_rs']:.3g} r_s).")
     if args.plot:
-        from ..plots import galaxy_curves
+        from ..plots import galaxy_curves  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
         out_path = Path(args.plot)
         if not out_path.parent.exists():

@@ -21,7 +21,7 @@ def add_parser(sub):
 
 
 def run(args) -> int:
-    from ..emulate import describe, load
+    from ..emulate import describe, load  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     emu = load(args.emulator)
     print(describe(args.emulator))

@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import functools
+import itertools
 import json
 import time
 from pathlib import Path
 
+import numpy as np
+
+from ..config import template
 from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag
 
 
@@ -39,9 +43,8 @@ def add_parser(sub):
 
 
 def run(args) -> int:
-    from ..config import template
-    from ..simulate import TRAIN_SCHEMA, load_training_config, simulate_point, simulation_hash, training_table
-    from ..training import collect, make_design, run_design
+    from ..simulate import TRAIN_SCHEMA, load_training_config, simulate_point, simulation_hash, training_table  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..training import collect, make_design, run_design  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     if args.template:
         print(template(TRAIN_SCHEMA))
@@ -76,10 +79,8 @@ def run(args) -> int:
 
 
 def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
-    import numpy as np
-
-    from ..emulate import GPEmulator, save
-    from ..summaries import azimuthal_outputs
+    from ..emulate import GPEmulator, save  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..summaries import azimuthal_outputs  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     names, theta, outputs = collect(args.out)
     X, Y, V = training_table(setup, theta, outputs)
@@ -123,8 +124,6 @@ def _fit_emulator(setup, args, collect, training_table, wall, n_computed):
 def _negative_density_report(setup):
     """Where a potential-flattened halo's density is negative inside the selection volume,
     at the corners of the training domain (recorded in the emulator, shown by `swerve info`)."""
-    import itertools
-
     r_max = setup.spec.r_edges[-1]
     corners = []
     names = setup.galaxy_names
