@@ -13,6 +13,16 @@ compared in units of emcee's posterior standard deviation, beside their Monte Ca
 
     python benchmarks/large_catalogs.py --n-stars 800 10000 --emcee-cap 10000:300
 
+``--variants new old`` runs the Laplace path twice: ``new``, laplace_is's defaults (a mixture
+proposal over up to 4 maxima, a defensive component); ``old``, one Student-t and no defensive
+component (``max_modes=1, defensive=0``: the path before 2026-12-06); ``single``, one Student-t with
+the defensive component. Where the weights are unreliable the path goes on as a fit does, with
+emcee started from its draws (timed, and added to the path's time).
+``--mocks K`` fits K mocks per size (mock seeds ``--seed`` + N + i); ``--emcee-cap N:0`` skips emcee
+at size N:
+
+    python benchmarks/large_catalogs.py --n-stars 10000 --mocks 3 --variants new old --emcee-cap 10000:0
+
 ``--against-fit RUN_FOLDER`` instead compares the Laplace path with the converged chain of a
 finished ``swerve fit`` run folder (its stars.npz, the adjustment recorded in chain.key, chain.h5;
 default emulator settings), without sampling again:
@@ -34,7 +44,8 @@ import numpy as np
 def make_catalog(n, seed, bank_size, folder):
     from swerve.galaxy import HALO_FLATTENINGS, Galaxy
     from swerve.launch import BoundedPowerLawSpeed
-    from swerve.population import ErrorLaw, ErrorModel, make_mock, write_mock
+    from swerve.measurement import ErrorLaw, ErrorModel
+    from swerve.population import make_mock, write_mock
     from swerve.selection import Selection
 
     flat = "density" if "density" in HALO_FLATTENINGS else "potential"
@@ -69,62 +80,50 @@ def mc_error(ess):
     return np.sqrt(p * (1 - p)) / norm.pdf(norm.ppf(p)) / np.sqrt(ess)
 
 
-def run(n, args, folder, emcee_steps_ref):
+def run(n, args, folder, emcee_steps_ref, mock_seed):
     from threadpoolctl import threadpool_limits
 
     from swerve.catalog import read_catalog
     from swerve.emulate import load
-    from swerve.fit import _adjusted, _star_terms, load_fit_config
-    from swerve.frames import SolarParameters
-    from swerve.laplace import laplace_is
-    from swerve.likelihood import Likelihood
-    from swerve.sampling import Posterior, resolve_priors, sample_posterior
-    from swerve.summaries import SummarySpec
+    from swerve.fit import load_fit_config
+    from swerve.inference import adjust, n_walkers, prepare
+    from swerve.sampling import sample_posterior
 
     t0 = time.perf_counter()
-    path = make_catalog(n, args.seed + n, args.bank_size, folder)
+    path = make_catalog(n, mock_seed, args.bank_size, folder)
     t_mock = time.perf_counter() - t0
     cfg = load_fit_config()
     emu = load(args.emulator)
-    spec = SummarySpec.from_dict(emu.metadata["summaries"])
-    solar = SolarParameters.from_name(cfg["frame"]["solar"])
-    catalog = read_catalog(path)
-    t0 = time.perf_counter()
-    terms, _, _ = _star_terms(catalog, spec, cfg, solar)
-    t_terms = time.perf_counter() - t0
-    e = cfg["emulator"]
-    like = Likelihood(emulator=emu, stars=terms, spec=spec, include_emulator_variance=e["include_variance"],
-                      emulator_variance=e["variance"], emulator_error=e["error"], velocity_floor=e["velocity_floor"])
-    bounds = np.asarray(like.bounds, dtype=float)
-    names = list(like.parameter_names)
-    priors = resolve_priors(names, bounds, cfg["priors"]["parameters"])
-    plain = Posterior(like, priors)
+    problem = prepare(read_catalog(path), emu, cfg)  # the star terms, as swerve fit computes them
+    terms, t_terms = problem.terms, problem.seconds_terms
     s = dict(cfg["sampler"])
     t0 = time.perf_counter()
-    post, adjustment = _adjusted(plain, like, bounds, s, names, [])
+    post, adjustment = adjust(problem, cfg)
     t_adjust = time.perf_counter() - t0
     x_map = np.array([adjustment["theta_hat"][nm] for nm in post.free_names])
-    print(f"\n== {n} stars ({terms.n} used): mock {t_mock:.0f} s (not counted); star terms {t_terms:.1f} s; "
-          f"maximum + curvature adjustment {t_adjust:.1f} s", flush=True)
-
-    with threadpool_limits(limits=1, user_api="blas"):
-        t0 = time.perf_counter()
-        lap = laplace_is(post, seed=s["seed"], x_map=x_map)
-        t_lap = time.perf_counter() - t0
-    hist = "; ".join(f"round {i + 1}: ESS {h['ess']:.0f} of {h['n_draws']}, k {h['pareto_k']:.2f}"
-                     for i, h in enumerate(lap.history))
-    print(f"laplace-is: {t_lap:.1f} s, {lap.n_evaluations} posterior evaluations, "
-          f"{'reliable' if lap.reliable else 'NOT reliable (emcee would take over)'} ({hist})", flush=True)
-
+    print(f"\n== {n} stars ({terms.n} used; mock seed {mock_seed}): mock {t_mock:.0f} s (not counted); star terms "
+          f"{t_terms:.1f} s; maximum + curvature adjustment {t_adjust:.1f} s", flush=True)
     cap = args.cap.get(n)
     max_steps = cap or s["max_steps"]
+    emcee_kw = dict(seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=max_steps,
+                    check_every=min(s["check_every"], max_steps), n_tau=s["n_tau"], tau_rtol=s["tau_rtol"])
+
+    laps = [laplace_path(post, x_map, s, v, n_walkers(cfg, post.ndim), emcee_kw) for v in args.variants]
+    if cap == 0:  # emcee skipped at this size
+        for mm, (_, t_lap, t_fall, fall) in zip(args.variants, laps):
+            print(f"fit time, laplace path ({mm}): {t_terms + t_adjust + t_lap + t_fall:.0f} s "
+                  f"(star terms + maximum and adjustment + laplace-is{' + emcee from its draws' if fall else ''}); "
+                  f"peak RSS so far {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB", flush=True)
+        return
     with threadpool_limits(limits=1, user_api="blas"), warnings.catch_warnings():
         warnings.simplefilter("ignore")
         t0 = time.perf_counter()
-        res = sample_posterior(post, seed=s["seed"], nwalkers=s["nwalkers"] or None, max_steps=max_steps,
-                               check_every=min(s["check_every"], max_steps), n_tau=s["n_tau"],
-                               tau_rtol=s["tau_rtol"], x_map=x_map)
+        bar = progress_recorder() if args.progress_trace else False
+        res = sample_posterior(post, x_map=x_map, progress=bar, **emcee_kw)
         t_emcee = time.perf_counter() - t0
+    if args.progress_trace:
+        print("progress bar totals (step: total): " + ", ".join(f"{a}: {b}" for a, b in bar.made[-1].trace)
+              + f"; steps run {res.n_steps}", flush=True)
     per_step = t_emcee / res.n_steps
     if res.converged:
         emcee_steps_ref.setdefault("steps", res.n_steps)
@@ -138,15 +137,93 @@ def run(n, args, folder, emcee_steps_ref):
         how = (f"capped at {res.n_steps} steps ({per_step:.3f} s/step); extrapolated to {ref} steps, "
                f"{src} converged length")
     print(f"emcee: {t_emcee:.1f} s, {how}; tau {np.round(res.tau, 1).tolist()}", flush=True)
-    shared = t_terms + t_adjust
-    tot_e, tot_l = shared + t_emcee_full, shared + t_lap
-    print(f"fit time: emcee {tot_e:.0f} s{' (extrapolated)' if not res.converged else ''}, laplace-is {tot_l:.0f} s, "
-          f"ratio {tot_e / tot_l:.1f}; sampling alone {t_emcee_full:.0f} s vs {t_lap:.1f} s "
-          f"(ratio {t_emcee_full / t_lap:.0f}); peak RSS so far "
-          f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB", flush=True)
     if res.converged:
-        compare(quantiles(res.samples), quantiles(lap.samples, lap.weights), res.samples.std(axis=0),
-                res.n_walkers * (res.n_steps - res.burn_in) / np.max(res.tau), lap.ess, post.free_names)
+        print_intervals("emcee", quantiles(res.samples), post.free_names)
+    shared = t_terms + t_adjust
+    tot_e = shared + t_emcee_full
+    for mm, (lap, t_lap, t_fall, fall) in zip(args.variants, laps):
+        tot_l = shared + t_lap + t_fall
+        print(f"fit time ({mm}): emcee {tot_e:.0f} s{' (extrapolated)' if not res.converged else ''}, "
+              f"laplace path {tot_l:.0f} s{' (laplace-is + emcee from its draws)' if fall else ''}, "
+              f"ratio {tot_e / tot_l:.1f}; sampling alone {t_emcee_full:.0f} s vs {t_lap + t_fall:.1f} s "
+              f"(ratio {t_emcee_full / (t_lap + t_fall):.0f}); peak RSS so far "
+              f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB", flush=True)
+        if res.converged and lap.reliable:
+            compare(quantiles(res.samples), quantiles(lap.samples, lap.weights), res.samples.std(axis=0),
+                    res.n_walkers * (res.n_steps - res.burn_in) / np.max(res.tau), lap.ess, post.free_names)
+
+
+def progress_recorder():
+    """A tqdm class that writes nothing and records (steps so far, total) at every change of its
+    total: sample_posterior's estimate of the run's length."""
+    import io
+
+    from tqdm import tqdm
+
+    class Recorder(tqdm):
+        made = []
+
+        def __init__(self, *a, **kw):
+            self.trace = []
+            Recorder.made.append(self)
+            super().__init__(*a, file=io.StringIO(), **kw)
+
+        @property
+        def total(self):
+            return self.__dict__.get("_total")
+
+        @total.setter
+        def total(self, value):
+            self.__dict__["_total"] = value
+            self.trace.append((getattr(self, "n", 0), value))
+
+    return Recorder
+
+
+#: laplace_is keywords of the variants --variants picks
+VARIANTS = {"new": {}, "single": {"max_modes": 1}, "old": {"max_modes": 1, "defensive": 0.0}}
+
+
+def laplace_path(post, x_map, s, variant, nwalkers, emcee_kw):
+    """laplace-is from the adjustment's maximum, and, when its weights are unreliable, what a
+    fit then does: emcee started from walkers drawn from its weighted draws. Returns (result,
+    seconds, seconds of the emcee fall back, its SamplerResult or None)."""
+    from threadpoolctl import threadpool_limits
+
+    from swerve.laplace import laplace_is
+    from swerve.sampling import sample_posterior
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        t0 = time.perf_counter()
+        lap = laplace_is(post, seed=s["seed"], x_map=x_map, **VARIANTS[variant])
+        t_lap = time.perf_counter() - t0
+    hist = "; ".join(f"round {i + 1}: {h['components']} component(s), ESS {h['ess']:.0f} of {h['n_draws']}, "
+                     f"k {h['pareto_k']:.2f}" for i, h in enumerate(lap.history))
+    print(f"laplace-is ({variant}): {t_lap:.1f} s, {lap.n_evaluations} posterior evaluations; "
+          f"{lap.verdict} ({hist})", flush=True)
+    for m in lap.maxima:
+        print(f"  maximum: log posterior {m['log_post']:.2f} at {np.round(m['centre'], 4).tolist()}")
+    for c in lap.components:
+        print(f"  component: weight {c['weight']:.3f}, posterior mass {c['mass']:.3f}, centre "
+              f"{np.round(c['centre'], 4).tolist()}")
+    print_intervals("laplace-is", quantiles(lap.samples, lap.weights), post.free_names)
+    if lap.reliable:
+        return lap, t_lap, 0.0, None
+    with threadpool_limits(limits=1, user_api="blas"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t0 = time.perf_counter()
+        fall = sample_posterior(post, walkers=lap.start_walkers(nwalkers, np.random.default_rng(s["seed"])),
+                                **dict(emcee_kw, nwalkers=nwalkers))
+        t_fall = time.perf_counter() - t0
+    print(f"  then emcee from its draws: {t_fall:.1f} s, {fall.n_steps} steps, "
+          f"{'converged' if fall.converged else 'NOT converged'}; tau {np.round(fall.tau, 1).tolist()}", flush=True)
+    print_intervals("emcee from laplace-is", quantiles(fall.samples), post.free_names)
+    return lap, t_lap, t_fall, fall
+
+
+def print_intervals(label, q, names):
+    print(f"  {label}: median [68%] [95%]: " + "; ".join(
+        f"{nm} {q[j, 2]:.4g} [{q[j, 1]:.4g}, {q[j, 3]:.4g}] [{q[j, 0]:.4g}, {q[j, 4]:.4g}]" for j, nm in enumerate(names)))
 
 
 def compare(qe, ql, sd, ess_e, ess_l, names):
@@ -212,7 +289,12 @@ def against_fit(folder, args):
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--n-stars", type=int, nargs="+", default=[800, 10000])
-    ap.add_argument("--emcee-cap", default="", help="N:steps,... step caps of emcee per catalog size")
+    ap.add_argument("--emcee-cap", default="", help="N:steps,... step caps of emcee per catalog size (0: no emcee)")
+    ap.add_argument("--progress-trace", action="store_true",
+                    help="print the emcee progress bar's total at each change (its estimate of the run's length)")
+    ap.add_argument("--mocks", type=int, default=1, help="mocks per size (mock seeds seed + N + i)")
+    ap.add_argument("--variants", nargs="+", default=["new"], choices=sorted(VARIANTS),
+                    help="laplace_is settings, each run in turn (old: as before 2026-12-06)")
     ap.add_argument("--bank-size", type=int, default=8000)
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--emulator", default=None)
@@ -230,7 +312,8 @@ def main(argv=None):
     ref = {}
     with tempfile.TemporaryDirectory() as folder:
         for n in sorted(args.n_stars):
-            run(n, args, folder, ref)
+            for i in range(args.mocks):
+                run(n, args, folder, ref, args.seed + n + i)
 
 
 if __name__ == "__main__":

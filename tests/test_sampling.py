@@ -259,3 +259,94 @@ def test_warnings_for_a_catalog_made_with_another_model():
     assert "another Galaxy" in w[0] and "a_disk = 2.75" in w[0]
     assert "another launch model" in w[1] and "v_min = 800.0" in w[1]
     assert "another velocity selection" in w[2] and "v_min = 275.0" in w[2]
+
+
+class _RecordingBar:
+    """A tqdm subclass (made in the test, so tqdm is imported lazily) recording every total
+    assigned to it, writing to a string instead of stderr."""
+
+    @staticmethod
+    def make():
+        import io
+
+        from tqdm import tqdm
+
+        class Recording(tqdm):
+            made = []
+
+            def __init__(self, *args, **kwargs):
+                self.totals = []
+                self.descs = []
+                Recording.made.append(self)
+                super().__init__(*args, file=io.StringIO(), mininterval=0, **kwargs)
+
+            @property
+            def total(self):
+                return self.__dict__.get("_total")
+
+            @total.setter
+            def total(self, value):
+                self.__dict__["_total"] = value
+                self.totals.append(value)
+
+            def set_description(self, desc=None, refresh=True):
+                self.descs.append(desc)
+                super().set_description(desc, refresh=refresh)
+
+        return Recording
+
+
+def test_progress_total_follows_the_autocorrelation_estimate(tmp_path):
+    """The bar's total is the step cap until τ is measured, then at every check n_tau x τ_max
+    (τ recomputed here with emcee.autocorr.integrated_time on the same chain, read back from
+    its HDF5 file) rounded up to the next check; when the chain converges early the final total
+    is the steps actually run. The convergence rule itself, checked against emcee's τ: the
+    chain stops at the first check where it is longer than n_tau τ and τ moved by less than
+    tau_rtol since the last check."""
+    import emcee
+
+    from swerve.sampling import estimated_steps
+
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    Bar = _RecordingBar.make()
+    check, n_tau, rtol, cap = 50, 30.0, 0.1, 20000
+    res = sample_posterior(post, seed=4, max_steps=cap, check_every=check, n_tau=n_tau, tau_rtol=rtol,
+                           backend_path=tmp_path / "chain.h5", progress=Bar)
+    bar = Bar.made[-1]
+    assert res.converged and res.n_steps < cap
+    assert bar.totals[0] == cap  # no estimate before the first check
+    assert bar.totals[-1] == res.n_steps == bar.n  # ends full, at the steps run
+    chain = emcee.backends.HDFBackend(str(tmp_path / "chain.h5"), read_only=True).get_chain()
+    assert chain.shape[0] == res.n_steps
+    checks = list(range(check, res.n_steps + 1, check))
+    assert len(checks) >= 4  # several estimates to compare (6 checks with this seed)
+    taus = [emcee.autocorr.integrated_time(chain[:it], c=5, tol=0) for it in checks]
+    # the rule: not met at any earlier check, met at the last
+    prev = np.full(2, np.inf)
+    for it, tau in zip(checks, taus):
+        met = bool(np.all(n_tau * tau < it) and np.all(np.abs(prev - tau) < rtol * tau))
+        assert met == (it == res.n_steps), it
+        prev = tau
+    # the estimates: one per check before the last, each n_tau τ_max rounded up to a check
+    estimates = bar.totals[1:-1]
+    assert len(estimates) == len(checks) - 1 and len(bar.descs) == len(estimates)
+    for it, tau, total in zip(checks[:-1], taus[:-1], estimates):
+        need = n_tau * np.max(tau)
+        assert total == min(cap, max(it + check, check * np.ceil(need / check))), it
+        assert need <= total < need + check or total == it + check
+        assert total == estimated_steps(tau, it, check, cap, n_tau)
+    assert f"{n_tau:g} x tau_max" in bar.descs[-1]
+    # the last estimate before stopping was within one check of the length run
+    assert abs(estimates[-1] - res.n_steps) <= check
+    assert estimated_steps([np.nan, 3.0], 100, 50, 1000, 50.0) is None
+
+
+def test_progress_total_at_the_step_cap():
+    """A run stopped by its cap ends with the cap as total (the estimate never exceeds it)."""
+    post = Posterior(gauss_loglike, resolve_priors(["a", "b"], [[-5, 5], [-6, 4]]))
+    Bar = _RecordingBar.make()
+    with pytest.warns(ConvergenceWarning):
+        res = sample_posterior(post, seed=1, max_steps=300, check_every=100, progress=Bar)
+    bar = Bar.made[-1]
+    assert res.n_steps == 300 and bar.n == 300
+    assert bar.totals[0] == 300 and bar.totals[-1] == 300 and max(bar.totals) == 300

@@ -95,10 +95,10 @@ FIT_SCHEMA = Schema("fit", (
         Key("n_tau", "float", 50.0, min=1.0, doc="converged when the chain is longer than n_tau x tau ..."),
         Key("tau_rtol", "float", 0.05, min=0.0, doc="... and tau changed by less than this fraction"),
         Key("seed", "int", 1, min=0, doc="seed of the sampler"),
-        Key("method", "str", "emcee", choices=("emcee", "laplace-is", "auto"),
+        Key("method", "str", "auto", choices=("emcee", "laplace-is", "auto"),
             doc="emcee: the ensemble sampler; laplace-is: the Laplace approximation at the maximum checked by "
                 "importance sampling (swerve.laplace: seconds for large catalogs), emcee started from its draws "
-                "when the weights are unreliable; auto: laplace-is from laplace_min_stars usable stars"),
+                "when the weights are unreliable; auto: laplace-is from laplace_min_stars usable stars, emcee below"),
         Key("laplace_min_stars", "int", 1000, min=1, doc="catalog size from which method = 'auto' tries laplace-is"),
         Key("refit", "str", "reweight", choices=("reweight", "sample"),
             doc="after stars are added to a converged fit in the same folder: importance-reweight its chain by the "

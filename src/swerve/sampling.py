@@ -14,8 +14,11 @@ import math
 import warnings
 from dataclasses import dataclass, field
 
+import emcee
 import numpy as np
 from scipy import optimize
+from scipy.stats import gaussian_kde, genpareto
+from tqdm import tqdm
 
 from .fileio import did_you_mean
 
@@ -212,8 +215,6 @@ def _buffered_backend(path, flush_every: int):
     read. An interrupted fit loses at most ``flush_every`` steps; the file always holds whole
     steps with a consistent iteration count.
     """
-    import emcee
-
     class BufferedHDFBackend(emcee.backends.HDFBackend):
         def __init__(self, *a, **kw):
             super().__init__(*a, **kw)
@@ -273,6 +274,42 @@ def _initial_walkers(posterior, x0, nwalkers, rng):
     return p0
 
 
+def estimated_steps(tau, it: int, check_every: int, max_steps: int, n_tau: float) -> int | None:
+    """The chain length :func:`sample_posterior` now expects to stop at, from the autocorrelation
+    times ``tau`` measured at step ``it``: ``n_tau`` x max τ (the length the convergence rule
+    asks for), rounded up to the next check (the chain stops only at a check) and at least the
+    next check after ``it`` (τ must also be stable from one check to the next), at most
+    ``max_steps``. None while some τ is not yet finite (no estimate)."""
+    tau = np.asarray(tau, dtype=float)
+    if not np.all(np.isfinite(tau)):
+        return None
+    need = math.ceil(n_tau * float(np.max(tau)))
+    at_check = check_every * math.ceil(need / check_every)
+    return int(min(max_steps, max(at_check, it + check_every)))
+
+
+def _progress_bar(progress, max_steps: int, resumed: int, n_tau: float):
+    """The sampler's bar (stderr), or None. ``progress``: True for tqdm's bar, or a tqdm-like
+    class (called as tqdm is; the tests pass a subclass that records its totals). Its total
+    starts at the step cap and follows :func:`estimated_steps` from the first check on."""
+    if not progress:
+        return None
+    if progress is True:
+        progress = tqdm
+    return progress(total=max_steps, initial=resumed, unit="step", leave=False,
+                    desc=f"emcee: steps (cap {max_steps}; to {n_tau:g} tau once tau is measured)")
+
+
+def _update_estimate(bar, tau, it, check_every, max_steps, n_tau):
+    est = estimated_steps(tau, it, check_every, max_steps, n_tau)
+    if est is None:
+        return
+    bar.total = est
+    what = "the step cap" if est == max_steps else f"{n_tau:g} x tau_max {float(np.max(tau)):.1f}"
+    bar.set_description(f"emcee: steps (estimate {est}: {what})", refresh=False)
+    bar.refresh()
+
+
 def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = None, max_steps: int = 20000,
                      check_every: int = 250, n_tau: float = 50.0, tau_rtol: float = 0.05,
                      backend_path=None, progress: bool = False, x_map=None, moves: str = "de",
@@ -300,9 +337,13 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
         26 instead of 70 steps on the demo fit. (DESnookerMove was dropped: it divides by the
         distance between walkers and proposed NaN on a very narrow posterior.) ``"stretch"``:
         the stretch move alone, emcee's default.
+    progress : bool or tqdm-like class
+        A bar over the steps (stderr) whose total is the run's expected length, not the step
+        cap: from the first autocorrelation check on, ``n_tau`` x the largest τ rounded up to the
+        next check (:func:`estimated_steps`), so its remaining-time estimate follows
+        convergence; at the end the total is the steps run. A class (a tqdm subclass) is
+        called instead of tqdm.
     """
-    import emcee
-
     rng = np.random.default_rng(seed)
     ndim = posterior.ndim
     nwalkers = int(nwalkers or max(32, 4 * ndim))
@@ -357,15 +398,27 @@ def sample_posterior(posterior: Posterior, *, seed: int, nwalkers: int | None = 
     tau = np.full(ndim, np.nan)
     steps_left = max(0, max_steps - resumed)
     it = resumed
-    for _ in sampler.sample(start, iterations=steps_left, progress=progress):
-        it += 1  # counted here: sampler.iteration would read (and flush) the backend every step
-        if it % check_every:
-            continue
-        tau = _autocorr(sampler)
-        if np.all(np.isfinite(tau)) and np.all(n_tau * tau < it) and np.all(np.abs(old_tau - tau) < tau_rtol * tau):
-            converged = True
-            break
-        old_tau = tau
+    bar = _progress_bar(progress, max_steps, resumed, n_tau)
+    try:
+        for _ in sampler.sample(start, iterations=steps_left, progress=False):
+            it += 1  # counted here: sampler.iteration would read (and flush) the backend every step
+            if bar is not None:
+                bar.update(1)
+            if it % check_every:
+                continue
+            tau = _autocorr(sampler)
+            if np.all(np.isfinite(tau)) and np.all(n_tau * tau < it) and np.all(np.abs(old_tau - tau) < tau_rtol * tau):
+                converged = True
+                break
+            old_tau = tau
+            if bar is not None:
+                _update_estimate(bar, tau, it, check_every, max_steps, n_tau)
+        if bar is not None:  # the steps run: the bar ends full, whether converged or at the cap
+            bar.total = it
+            bar.refresh()
+    finally:
+        if bar is not None:
+            bar.close()
     if backend is not None:
         backend.flush()
     n_steps = sampler.iteration
@@ -451,8 +504,6 @@ def pareto_k(log_w) -> float:
     Pareto-smoothed importance sampling (Vehtari et al. 2024; their estimator is Zhang &
     Stephens' Bayesian one, this is the plain MLE). k < 0.5: the weights have a finite variance;
     k > 0.7: too heavy-tailed to trust. NaN with fewer than 5 tail samples."""
-    from scipy.stats import genpareto
-
     lw = np.asarray(log_w, dtype=float)
     lw = lw[np.isfinite(lw)]
     n = lw.size
@@ -482,7 +533,7 @@ def importance_weights(log_w) -> ImportanceWeights:
 # ------------------------------------------------------------------ posterior sanity warnings ----
 #: catalog size (stars) at which the fit's calibration was shown: the 68% and 95% intervals of every
 #: parameter cover the truth at their nominal rates on 100-star catalogs with the default emulator;
-#: at 300 stars the disk mass's 95% intervals covered it in 88% of 64 catalogs with the shipped emulator (benchmarks/RESULTS.md)
+#: at 300 and 1000 stars the masses' intervals are too narrow (benchmarks/RESULTS.md, "Calibration by catalog size")
 CALIBRATED_STARS = 100
 #: a bound is "piled against" when more than this share of the posterior lies within ...
 BOUND_MASS = 0.2
@@ -504,8 +555,6 @@ def _modes(x, w=None, min_mass: float = 0.1, max_dip: float = 0.5) -> int:
     """Separated modes of a 1-D sample: local maxima of a Gaussian kernel density estimate (scipy,
     Scott's bandwidth) split at the lowest point between neighbours, counted when each side holds
     at least ``min_mass`` of the sample and the dip falls below ``max_dip`` of the lower peak."""
-    from scipy.stats import gaussian_kde
-
     x = np.asarray(x, dtype=float)
     if x.size < 20 or np.ptp(x) == 0:
         return 1
@@ -586,7 +635,8 @@ def posterior_warnings(samples, names, priors, *, weights=None, kappa=None, kapp
                        "underestimated errors")
     if n_stars is not None and n_stars > CALIBRATED_STARS:
         out.append(f"catalog: {n_stars} stars; the fit's calibration was shown for catalogs of {CALIBRATED_STARS} "
-                   "stars (at 300 the disk mass's 95% intervals covered the truth in 88% of 64 catalogs): with more "
+                   "stars (at 300 and 1000 stars the masses' 95% intervals covered the truth in 84-88% of 64 catalogs, "
+                   "their 68% intervals in 52-56% at 1000; benchmarks/RESULTS.md): with more "
                    "stars the emulator's and the model's own errors weigh more against the shrinking statistical "
                    "error, and the intervals may be too narrow")
     out.extend(_meta_mismatches(catalog_meta, emulator_meta, set(by_name)))
