@@ -64,6 +64,7 @@ is the measurement model's, :mod:`swerve.measurement`.
 
 from __future__ import annotations
 
+import csv
 import logging
 import math
 import os
@@ -73,6 +74,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from astropy import units as u
+from astropy.table import Table
 
 __all__ = [
     "COLUMNS",
@@ -628,8 +630,6 @@ def _zero_point(value, option: str) -> float:
 def _check_header_names(name: str, fmt: str) -> None:
     """Refuse a CSV/ECSV file whose header names a column twice (astropy would rename the second
     one, ``ra`` -> ``ra_1``, and the file would be read as if nothing were wrong)."""
-    import csv
-
     try:
         with open(name, encoding="utf-8", newline="") as fh:
             for line in fh:
@@ -654,8 +654,6 @@ def _check_header_names(name: str, fmt: str) -> None:
 
 
 def _read_table(name: str, fmt: str):
-    from astropy.table import Table
-
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")

@@ -106,12 +106,24 @@ the emulator's.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.linalg import solve_triangular
+from scipy.special import ndtr
 
+from .background import BACKGROUNDS, HALO_SIGMA, MIXTURE_PARAMETER, halo_log_density, membership, mixture_loglike
+from .frames import PM_KMS_PER_KPC_MASYR, affine_map, helio_to_galacto
 from .likelihood_kernels import _cell_gaussians_tri, _half_quad_minus_logdet, _run_kernels
-from .summaries import N_STAT, SummarySpec, stats_to_gaussian, stats_to_vr_density
+from .summaries import (
+    N_STAT,
+    VR_FRACTION_FLOOR,
+    VR_FRACTION_MIN,
+    SummarySpec,
+    stats_to_gaussian,
+    stats_to_vr_density,
+)
 
 
 # ------------------------------------------------------------------ θ-independent star terms
@@ -205,8 +217,6 @@ def velocity_moments(catalog, samples, solar=None):
     The map ``(vlos, pmra, pmdec) -> v = R [r̂, κ d ê_α, κ d ê_δ] (vlos, pmra, pmdec)ᵀ + w`` is
     linear at fixed distance (:func:`swerve.frames.affine_map`), so the moments are exact.
     """
-    from .frames import PM_KMS_PER_KPC_MASYR, affine_map
-
     rot, _t, w_sun = affine_map(solar if solar is not None else samples.settings.get("solar"))
     n, k = samples.distance.shape
     ra = np.radians(catalog.ra)
@@ -272,18 +282,12 @@ def linearised_samples(catalog, samples, solar=None):
 
     Returns a new ErrorSamples with k = 1.
     """
-    import dataclasses
-
-    from .frames import helio_to_galacto
-
     w = np.exp(samples.log_prior - samples.log_prior.max(axis=1, keepdims=True))
     w /= w.sum(axis=1, keepdims=True)
     d_mean = np.sum(w * samples.distance, axis=1)
     d_var = np.sum(w * (samples.distance - d_mean[:, None]) ** 2, axis=1)
     pos, _ = helio_to_galacto(catalog.ra, catalog.dec, d_mean, 0.0, 0.0, 0.0,
                               solar=solar if solar is not None else samples.settings.get("solar"))
-    from .frames import PM_KMS_PER_KPC_MASYR
-
     one = lambda a: np.asarray(a)[:, None]  # noqa: E731
     settings = dict(samples.settings, distance_var=d_var.tolist(), distance_method="linear")
     return dataclasses.replace(
@@ -302,10 +306,6 @@ def smoothed_samples(catalog, samples, solar=None):
     and the sum tends to plain importance sampling; for small K the density along each star's
     line of sight is smooth instead of K spikes.
     """
-    import dataclasses
-
-    from .frames import helio_to_galacto
-
     w = np.exp(samples.log_prior - samples.log_prior.max(axis=1, keepdims=True))
     w /= w.sum(axis=1, keepdims=True)
     n, k = samples.distance.shape
@@ -317,8 +317,6 @@ def smoothed_samples(catalog, samples, solar=None):
     d_new = np.maximum(d_new, 1e-6)
     pos, _ = helio_to_galacto(np.repeat(catalog.ra, k), np.repeat(catalog.dec, k), d_new.ravel(), 0.0, 0.0, 0.0,
                               solar=solar if solar is not None else samples.settings.get("solar"))
-    from .frames import PM_KMS_PER_KPC_MASYR
-
     settings = dict(samples.settings, distance_var=np.broadcast_to(h2, (n, k)).tolist(), distance_method="smoothed")
     return dataclasses.replace(samples, distance=d_new, position=pos.reshape(n, k, 3),
                                log_jacobian=2.0 * np.log(PM_KMS_PER_KPC_MASYR * d_new),
@@ -329,10 +327,6 @@ def smoothed_samples(catalog, samples, solar=None):
 def _velocity_gradient(catalog, samples, solar):
     """du/dd (n, k, 3) of the folded velocity at each sample, by a central difference along the
     line of sight."""
-    import dataclasses
-
-    from .frames import helio_to_galacto
-
     d = samples.distance
     n, k = d.shape
     eps = 1e-3 * d
@@ -484,8 +478,6 @@ def _vr_window(m_r, var_r, vr_edges, tol: float = 1e-10):
     of the mass are left out; K is the widest window any sample needs, ``count`` (n,) the bins of
     its window each sample needs (the kernels loop over those only: one sample with a wide v_r
     error must not make every sample pay for K bins). Returns (start, count, β, γ, γ2)."""
-    from scipy.special import ndtr
-
     e = np.asarray(vr_edges, dtype=float)
     sd = np.sqrt(np.maximum(var_r, 0.0))[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -674,8 +666,6 @@ class Likelihood:
                  emulator_error: str = "catalog", velocity_floor: float = DEFAULT_VELOCITY_FLOOR,
                  fisher_refresh: float = 0.02, background: str = "none", halo_sigma=None,
                  vlos_min: float | None = None):
-        from .background import BACKGROUNDS, HALO_SIGMA, MIXTURE_PARAMETER, halo_log_density
-
         if emulator_variance not in ("ensemble", "per-walker"):
             raise ValueError(f"emulator_variance: expected 'ensemble' or 'per-walker', got {emulator_variance!r}")
         if emulator_error not in EMULATOR_ERROR_MODES:
@@ -771,20 +761,16 @@ class Likelihood:
     def _mix(self, log_hvs, f):
         if f is None:
             return log_hvs
-        from .background import mixture_loglike
-
         return mixture_loglike(log_hvs, self.log_bg, self._pi(f))
 
     def membership(self, theta) -> np.ndarray:
         """Probability that each star is a hypervelocity star given its velocity and ``theta``
         (with ``f_hvs`` last), (W, n_star); ones without a background population."""
-        from .background import membership
-
         th, f = self._split(theta)
         out = self._evaluate(th, False)[0]
         if f is None:
             return np.ones_like(out)
-        return membership(out, self.log_bg, self._pi(f))
+        return membership(out, self.log_bg, self._pi(f))  # swerve.background.membership, not this method
 
     # ----------------------------------------------------------------- emulator's uncertainty
     def _cached(self, theta, what, compute):
@@ -851,8 +837,6 @@ class Likelihood:
         :meth:`_mean_cov_factor`'s cache, ``P`` from the kernel at the mean, refreshed after
         ``fisher_refresh``), so that :meth:`emulator_correction` becomes
         ``½ |g Q|² − ½ log det B`` per walker."""
-        from scipy.linalg import solve_triangular
-
         Lf_cached = self._mean_cov_factor(theta)  # the cache's own array: its identity says E is unchanged
 
         f_c = None if f is None else np.array([np.mean(f)])
@@ -955,8 +939,6 @@ class Likelihood:
         (:meth:`_evaluate`), but the histogram's counts ``n_b`` are every used star's: halo stars
         are counted as hypervelocity stars in this term (a limitation of the mixture with v_r
         histogram emulators)."""
-        from .summaries import VR_FRACTION_FLOOR, VR_FRACTION_MIN
-
         spec = self.spec
         nc, nb = spec.n_cells, spec.n_vbins
         f_centre = None if f_mix is None else np.array([np.mean(f_mix)])  # the mixture's fraction, if any
@@ -998,8 +980,6 @@ class Likelihood:
             B = Lf.T @ P @ Lf
             B[np.diag_indices_from(B)] += 1.0
             C = np.linalg.cholesky(B)
-            from scipy.linalg import solve_triangular
-
             # gᵀ (P + E⁻¹)⁻¹ g = |C⁻¹ Lfᵀ g|² = |g Q|² with Q = Lf C⁻ᵀ
             Q = solve_triangular(C, Lf.T, lower=True).T
             return Q, 2.0 * np.sum(np.log(np.diag(C)))

@@ -51,6 +51,11 @@ from .catalog import Catalog
 from .frames import PM_KMS_PER_KPC_MASYR, helio_to_galacto, resolve_solar
 from .units import to_internal
 
+try:  # Python >= 3.11
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10 needs the tomli backport
+    import tomli as tomllib  # type: ignore[no-redef]
+
 __all__ = [
     "DISTANCE_PRIORS",
     "ERROR_D_REF",
@@ -302,10 +307,6 @@ def parse_error_model(text) -> ErrorModel:
     if s.lower() == "none":
         return ErrorModel(**ERROR_FREE)
     if s.endswith(".toml"):
-        try:
-            import tomllib
-        except ModuleNotFoundError:  # pragma: no cover
-            import tomli as tomllib  # type: ignore[no-redef]
         if not os.path.isfile(s):
             raise ValueError(f"errors: file {s} does not exist")
         try:

@@ -67,8 +67,8 @@ from numba import prange
 from scipy.integrate._ivp import dop853_coefficients as _dc
 
 from . import units
-from .galaxy import kernels
-from .galaxy.lmc import LMCTrack
+from .galaxy import Galaxy, kernels
+from .galaxy.lmc import LMCTrack, hernquist_acceleration, hernquist_potential, lmc_orbit
 from .orbits import (
     DEFAULT_ATOL,
     DEFAULT_MAX_STEPS,
@@ -796,8 +796,6 @@ def frame_potential(galaxy, track: LMCTrack, x, t) -> np.ndarray:
     Centre's frame and times ``t`` (m,) Myr within the track.  With ``W`` of
     :class:`LMCOrbitResult` the specific energy ``v^2/2 + frame_potential`` at time ``t`` equals
     its value at the start plus ``W``."""
-    from .galaxy.lmc import hernquist_acceleration, hernquist_potential
-
     x = np.asarray(x, dtype=float)
     X, _ = track.interpolate(np.broadcast_to(np.asarray(t, dtype=float), x.shape[:-1]))
     gm, a = track.lmc.gm, track.lmc.a_lmc
@@ -831,7 +829,7 @@ def lmc_origin_stats(weights, usable, d_min, t_d_min, v_rel, radius) -> dict:
         and of the relative speed there; NaN where none passes); and ``sample_pass`` (n, k).
         NaN for stars without usable paths.
     """
-    from .trace import weighted_quantile
+    from .trace import weighted_quantile  # noqa: PLC0415 - import cycle: swerve.trace imports this module
 
     n = weights.shape[0]
     passes = usable & (d_min < radius)
@@ -918,9 +916,6 @@ def lmc_encounter(positions, velocities, times=-1000.0, *, galaxy=None, track=No
     -------
     LMCEncounter
     """
-    from .galaxy import Galaxy
-    from .galaxy.lmc import lmc_orbit
-
     pos = np.asarray(units.to_internal(positions, "length", "positions"), dtype=float)
     vel = np.asarray(units.to_internal(velocities, "velocity", "velocities"), dtype=float)
     if pos.ndim == 2:

@@ -6,20 +6,23 @@ import math
 
 import numpy as np
 
+from .fileio import atomic_path
+
 
 def _pyplot():
-    import matplotlib
+    """pyplot with the non-interactive Agg backend. matplotlib is imported here, when a figure is
+    drawn, not with this module: swerve.fit, validation and forecast import this module, and
+    neither matplotlib's import time nor the choice of its backend should come with them."""
+    import matplotlib  # noqa: PLC0415 - lazy: matplotlib only when a figure is drawn (see above)
 
     matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    import matplotlib.pyplot as plt  # noqa: PLC0415 - lazy: after selecting the Agg backend
 
     return plt
 
 
 def save_figure(fig, path, dpi=110):
     """Write ``fig`` to ``path`` atomically (format from the extension; :mod:`swerve.fileio`) and close it."""
-    from .fileio import atomic_path
-
     try:
         with atomic_path(path) as tmp:
             fig.savefig(tmp, dpi=dpi)
@@ -29,7 +32,7 @@ def save_figure(fig, path, dpi=110):
 
 def sample_size_axis(ax, sizes):
     """A logarithmic x axis of sample sizes, labelled at exactly those sizes (plain numbers)."""
-    from matplotlib.ticker import NullFormatter, NullLocator
+    from matplotlib.ticker import NullFormatter, NullLocator  # noqa: PLC0415 - lazy: matplotlib only when a figure is drawn
 
     ax.set_xscale("log")
     sizes = sorted({int(v) for v in sizes})
@@ -91,7 +94,7 @@ _SCALE = {"m_halo": 1e12, "m_disk": 1e11}
 def corner_plot(samples, names, path, truths=None, weights=None):
     """Corner plot of posterior samples (the corner package), with true values if known and
     importance weights if the samples carry them."""
-    import corner
+    import corner  # noqa: PLC0415 - lazy: corner imports matplotlib (only when a figure is drawn)
 
     _pyplot()  # the non-interactive backend, before corner imports pyplot's figures
     labels = [_LABELS.get(n, n) for n in names]
@@ -179,7 +182,7 @@ def accuracy_plots(acc: dict, parameter_names, path_hist, path_map):
 
 def calibration_plot(cal: dict, path):
     """Rank histograms per parameter with the 99% band of uniform counts, and coverage."""
-    from scipy.stats import binom
+    from scipy.stats import binom  # noqa: PLC0415 - lazy: scipy.stats for this figure only (swerve trace and galaxy import this module)
 
     plt = _pyplot()
     names = list(cal["parameters"])
@@ -208,7 +211,7 @@ def calibration_plot(cal: dict, path):
 def power_plot(power: dict, path):
     """Success rate vs N, one panel per error model: swerve and the KS baseline (binomial
     standard errors as bars; the baseline's points shifted 3% right to keep the bars apart)."""
-    from .validation import binomial_sigma  # validation draws with this module: imported here
+    from .validation import binomial_sigma  # noqa: PLC0415 - import cycle: swerve.validation imports this module
 
     plt = _pyplot()
     errs = power["errors"]

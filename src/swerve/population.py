@@ -33,10 +33,16 @@ import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
+from astropy.table import Table
 
 from . import __version__
 from .bank import TrajectoryBank, build_bank, effective_sample_size, sample_weights
+from .fileio import atomic_path, jsonable
+from .frames import folded_v_theta, galacto_to_helio, resolve_solar, spherical_components
+from .galaxy import Galaxy
 from .measurement import ErrorModel
+from .rng import as_generator
+from .selection import MEASURED_CUTS
 
 __all__ = [
     "DEFAULT_MIN_ESS",
@@ -136,22 +142,16 @@ class Population:
     def spherical(self) -> dict:
         """``r, theta, phi, v_r, v_theta, v_phi`` (kpc, rad, km/s), see
         :func:`swerve.frames.spherical_components`."""
-        from .frames import spherical_components
-
         return spherical_components(self.pos, self.vel)
 
     def folded_v_theta(self) -> np.ndarray:
         """Folded polar velocity ``v_θ' = v_θ sign(z)``, km/s (positive: toward the plane)."""
-        from .frames import folded_v_theta
-
-        return folded_v_theta(self.pos, self.vel)
+        return folded_v_theta(self.pos, self.vel)  # swerve.frames.folded_v_theta, not this method
 
     def helio(self, solar=None) -> dict:
         """Heliocentric observables (``ra, dec, distance, parallax, pmra, pmdec, vlos``) via
         :func:`swerve.frames.galacto_to_helio`; ``solar`` recorded as ``meta["solar"]`` by the
         callers that keep it."""
-        from .frames import galacto_to_helio
-
         self._refuse_octant("heliocentric observables")
         return galacto_to_helio(self.pos, self.vel, solar)
 
@@ -196,8 +196,6 @@ class Population:
         if selection.unbound and galaxy is None:
             if "galaxy" not in self.meta:
                 raise ValueError("select: the unbound cut needs a Galaxy")
-            from .galaxy import Galaxy
-
             galaxy = Galaxy.from_dict(self.meta["galaxy"])
         mask, removed = selection.apply(self.pos, self.vel, galaxy=galaxy, solar=solar, report=True)
         out = self._take(mask)
@@ -337,8 +335,6 @@ def select_bank(bank: TrajectoryBank, selection=None, *, galaxy=None, solar=None
     if mirror not in ("random", "all", "none"):
         raise ValueError(f"mirror: expected 'random', 'all' or 'none', got {mirror!r}")
     if selection is not None and selection.unbound and galaxy is None:
-        from .galaxy import Galaxy
-
         galaxy = Galaxy.from_dict(bank.galaxy)
     removed: dict = {}
     idx = np.arange(bank.n_stored)
@@ -378,8 +374,6 @@ def select_bank(bank: TrajectoryBank, selection=None, *, galaxy=None, solar=None
     meta = {"selection": None if selection is None else selection.to_dict(), "selection_removed": removed,
             "mirror": mirror if bank.octant else "none (full-sphere bank)"}
     if solar is not None:
-        from .frames import resolve_solar
-
         meta["solar"] = resolve_solar(solar).to_dict()
     return SelectedSamples(bank, idx, pos, vel, orbit, bank.t_flight[idx], bank.v_launch[orbit], scale, octant, meta)
 
@@ -433,14 +427,10 @@ _UNITS = {"ra": "deg", "dec": "deg", "distance": "kpc", "distance_err": "kpc", "
 
 
 def _jsonable(obj):
-    from .fileio import jsonable
-
     return jsonable(obj)
 
 
 def _bank_region(selection, solar):
-    from .frames import resolve_solar
-
     r_min = selection.r_min if selection.r_min is not None else 0.0
     r_sun = float(resolve_solar(solar).to_dict().get("galcen_distance", 8.122))
     if selection.r_max is not None:
@@ -489,11 +479,6 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
         parameters, Galaxy, launch model, selection, error model, seed, solar parameters,
         bank provenance, ESS and swerve version.
     """
-    from astropy.table import Table
-
-    from .frames import resolve_solar
-    from .rng import as_generator
-
     rng, seed = as_generator(rng)
     if not isinstance(error_model, ErrorModel):
         raise ValueError(f"error_model: expected an ErrorModel, got {type(error_model).__name__}")
@@ -597,8 +582,6 @@ def _draw_measured(pop: Population, selection, error_model, n: int, rng, solar, 
     observables, {"cuts", "removed", "pass_fraction"}); ``removed`` and ``pass_fraction`` count
     the stars examined up to the last one kept. Refuses (ValueError) a cut that keeps fewer than
     one star in ``max_factor``."""
-    from .selection import MEASURED_CUTS
-
     parts, kept, examined = [], 0, 0
     frac = None
     while kept < n:
@@ -653,8 +636,6 @@ def write_mock(table, path) -> str:
     elif fmt == "ascii.csv":
         out = table.copy(copy_data=False)
         out.meta = {}
-    from .fileio import atomic_path
-
     with atomic_path(path) as tmp:
         out.write(tmp, format=fmt, overwrite=True)
     return fmt

@@ -43,10 +43,14 @@ Gaussian form.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from .fileio import did_you_mean
+from .frames import galactic_latitude, galacto_to_helio
 
 _FIELDS_DOC = {
     "r_min": "minimum galactocentric radius [kpc]",
@@ -129,8 +133,6 @@ class Selection:
         names = {f.name for f in dataclasses.fields(cls)}
         unknown = set(d) - names
         if unknown:
-            from .fileio import did_you_mean
-
             key = sorted(unknown)[0]
             raise ValueError(f"{source}: unknown selection key {key!r}{did_you_mean(key, names, list_all=True)}")
         return cls(**d)
@@ -219,16 +221,12 @@ class Selection:
             cut("unbound", speed > vesc)
         if self.needs_heliocentric:
             if helio is None:
-                from .frames import galacto_to_helio
-
                 helio = galacto_to_helio(pos, vel, solar)
             if self.d_min is not None:
                 cut("d_min", helio["distance"] >= self.d_min)
             if self.d_max is not None:
                 cut("d_max", helio["distance"] <= self.d_max)
             if self.abs_b_min is not None:
-                from .frames import galactic_latitude
-
                 cut("abs_b_min", np.abs(galactic_latitude(helio["ra"], helio["dec"])) >= self.abs_b_min)
             if self.dec_min is not None:
                 cut("dec_min", helio["dec"] >= self.dec_min)
@@ -253,8 +251,6 @@ def declared_selection(catalog_meta, source: str = "catalog") -> Selection | Non
     """The selection a catalog declares in its meta (``selection``, a table of cuts as
     :meth:`Selection.to_dict` writes it; a FITS mock's meta is read back from its ``SWMnnnnn``
     header cards), or None when it declares none."""
-    import json
-
     meta = dict(catalog_meta or {})
     if "selection" not in meta:
         cards = sorted(k for k in meta if isinstance(k, str) and k.upper().startswith("SWM") and k[3:].isdigit())

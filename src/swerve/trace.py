@@ -98,8 +98,13 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+from astropy.table import Table
 
 from . import __version__
+from .fileio import atomic_path, jsonable
+from .galaxy import Galaxy
+from .galaxy.lmc import LMC, LMCTrack, lmc_orbit
+from .measurement import ErrorSamples, draw_samples
 from .orbits import (
     DEFAULT_ATOL,
     DEFAULT_RTOL,
@@ -116,6 +121,7 @@ from .orbits_lmc import (
     lmc_origin_stats,
     stop_names,
 )
+from .rng import as_generator
 from .units import to_internal
 
 __all__ = [
@@ -356,8 +362,6 @@ class TraceResult:
     def to_table(self):
         """The per-star results as an :class:`astropy.table.Table` with units, descriptions
         and :attr:`meta` (the columns of :attr:`columns`)."""
-        from astropy.table import Table
-
         t = Table()
         n = self.n
         nan = np.full(n, np.nan)
@@ -374,8 +378,6 @@ class TraceResult:
 
 
 def _jsonable(obj):
-    from .fileio import jsonable
-
     return jsonable(obj)
 
 
@@ -385,8 +387,6 @@ def _jsonable(obj):
 
 def _lmc_track(galaxy, lmc, max_time, solar):
     """The LMC track of a trace: ``lmc`` True (the default LMC), an LMC or an LMCTrack."""
-    from .galaxy.lmc import LMC, LMCTrack, lmc_orbit
-
     if isinstance(lmc, LMCTrack):
         if lmc.t_min > -max_time + 1e-9:
             raise ValueError(
@@ -645,8 +645,6 @@ def trace_samples(galaxy, samples, **kwargs) -> TraceResult:
         ``meta``. With ``lmc``, the LMC's present state uses the samples' solar parameters
         unless ``solar`` is given.
     """
-    from .measurement import ErrorSamples
-
     if not isinstance(samples, ErrorSamples):
         raise ValueError(f"samples: expected swerve.measurement.ErrorSamples, got {type(samples).__name__}")
     lp = samples.log_prior - samples.log_prior.max(axis=1, keepdims=True)
@@ -697,10 +695,6 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
     >>> res = trace_catalog(read_catalog("examples/demo.ecsv"), k=50, rng=1)  # doctest: +SKIP
     >>> res.to_table()["p_origin"]  # doctest: +SKIP
     """
-    from .galaxy import Galaxy
-    from .measurement import draw_samples
-    from .rng import as_generator
-
     rng, seed = as_generator(rng)
     galaxy = Galaxy.default() if galaxy is None else galaxy
     samples = draw_samples(catalog, k, rng, distance_prior=distance_prior, solar=solar,
@@ -718,8 +712,6 @@ def trace_catalog(catalog, galaxy=None, k: int = 500, rng=None, *, distance_prio
 def _atomic(path, write):
     """Call ``write(tmp)`` for a temporary file beside ``path`` (same suffix), then rename it
     (:func:`swerve.fileio.atomic_path`); a missing folder is a ValueError."""
-    from .fileio import atomic_path
-
     folder = os.path.dirname(os.path.abspath(os.fspath(path)))
     if not os.path.isdir(folder):
         raise ValueError(f"{os.fspath(path)!r}: folder {folder} does not exist")

@@ -47,6 +47,7 @@ import time
 import warnings
 from pathlib import Path
 
+import numba
 import numpy as np
 from joblib import Parallel, delayed
 from scipy.stats import chisquare
@@ -58,6 +59,7 @@ from .catalog import catalog_from_table
 from .config import Key, Schema, Section, config_hash, defaults, load_config, validate
 from .emulate import content_hash, load
 from .fileio import jsonable, write_text
+from .fileio import write_json as _write_json
 from .fit import FIT_SCHEMA, load_fit_config
 from .measurement import ERROR_FREE, parse_error_model  # noqa: F401  (re-exported: swerve.validation.parse_error_model)
 from .population import make_mock
@@ -295,8 +297,6 @@ def fit_record(fr: inference.FitResult, n_draws: int, seed: int) -> dict:
 def _fit_task(emulator_dir, table, fit_cfg, seed, priors, solar, single_thread):
     """One catalog through swerve fit's path (:func:`swerve.inference.fit_catalog`)."""
     if single_thread:
-        import numba
-
         numba.set_num_threads(1)
     emu = _emulator(emulator_dir)
     try:
@@ -557,9 +557,7 @@ def _jsonable(o):
 
 def write_json(path, doc):
     """Write ``doc`` as strict JSON atomically (NaN written as null; :func:`swerve.fileio.write_json`)."""
-    from .fileio import write_json as _write
-
-    _write(path, doc, indent=1)
+    _write_json(path, doc, indent=1)
 
 
 def run_validation(emulator_dir, held_out_dir, out_dir, cfg: dict, log=None) -> dict:

@@ -9,7 +9,12 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+import time
+from pathlib import Path
 
+import numpy as np
+
+from ..config import Key, Schema, Section, load_config, template, validate
 from ._common import EXIT_OK, METAVAR, CommandError, add_template_flag, check_option, parse_param_list
 
 log = logging.getLogger("swerve")
@@ -30,8 +35,7 @@ EMULATOR_MODEL_DEFAULTS = {
 
 
 def _schema():
-    from ..config import Key, Schema, Section
-    from ..selection import _FIELDS_DOC, Selection
+    from ..selection import _FIELDS_DOC, Selection  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     sel_keys = []
     for f in dataclasses.fields(Selection):
@@ -144,7 +148,7 @@ def add_parser(sub):
 def _law_list(text, option):
     """The numbers of an error law given on the command line: ``A`` or ``A:B:P``
     (:func:`swerve.measurement.parse_error_law`), or [] for 'none'."""
-    from ..measurement import parse_error_law
+    from ..measurement import parse_error_law  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     if text.strip().lower() == "none":
         return []
@@ -172,8 +176,6 @@ def _parse_cut(item):
 
 
 def _config(args):
-    from ..config import load_config, validate
-
     schema = _schema()
     for option, section, key, value in (("--n", "", "n", args.n), ("--seed", "", "seed", args.seed),
                                         ("--flight-time-max", "launch", "flight_time_max", args.flight_time_max),
@@ -226,10 +228,10 @@ def _config(args):
 
 
 def _build(cfg, params):
-    from ..galaxy import DEFAULT_GALAXY, Galaxy
-    from ..launch import BoundedPowerLawSpeed, HillsLaunch
-    from ..measurement import ErrorLaw, ErrorModel
-    from ..selection import Selection
+    from ..galaxy import DEFAULT_GALAXY, Galaxy  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..launch import BoundedPowerLawSpeed, HillsLaunch  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..measurement import ErrorLaw, ErrorModel  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..selection import Selection  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     gal, lau = cfg["galaxy"], cfg["launch"]
     name = gal["model"] or DEFAULT_GALAXY
@@ -272,12 +274,8 @@ def _build(cfg, params):
 
 
 def run(args) -> int:
-    import time
-    from pathlib import Path
-
-    from ..bank import build_bank, load_bank, save_bank
-    from ..config import template
-    from ..population import _bank_region, make_mock, write_mock
+    from ..bank import build_bank, load_bank, save_bank  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..population import _bank_region, make_mock, write_mock  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     cfg, params, schema = _config(args)
     if args.template:
@@ -293,8 +291,6 @@ def run(args) -> int:
         raise CommandError(f"--out {out}: folder {out.parent} does not exist")
     galaxy, launch, selection, errors = _build(cfg, params)
     t0 = time.perf_counter()
-    import numpy as np
-
     rng = np.random.default_rng(top["seed"])
     if bcfg["file"]:
         bank = load_bank(bcfg["file"])

@@ -6,6 +6,25 @@ import argparse
 import sys
 from pathlib import Path
 
+# at the top although this is a command module: add_parser needs swerve.trace (the help quotes its
+# defaults and columns), so building the parser loads it, and with it the other modules named here
+from ..catalog import CatalogError, read_catalog
+from ..frames import resolve_solar
+from ..galaxy import Galaxy
+from ..galaxy.lmc import LMC
+from ..galaxy.model import DEFAULT_GALAXY
+from ..measurement import DISTANCE_PRIORS, distance_warning
+from ..trace import (
+    DEFAULT_LAUNCH_RADIUS,
+    DEFAULT_LMC_RADIUS,
+    DEFAULT_MAX_TIME,
+    DEFAULT_RADIUS,
+    LMC_TRACE_COLUMNS,
+    TRACE_COLUMNS,
+    trace_catalog,
+    trace_summary,
+    write_trace_table,
+)
 from ._common import (
     EXIT_ERROR,
     EXIT_OK,
@@ -18,16 +37,6 @@ from ._common import (
 
 
 def add_parser(sub):
-    from ..measurement import DISTANCE_PRIORS
-    from ..trace import (
-        DEFAULT_LAUNCH_RADIUS,
-        DEFAULT_LMC_RADIUS,
-        DEFAULT_MAX_TIME,
-        DEFAULT_RADIUS,
-        LMC_TRACE_COLUMNS,
-        TRACE_COLUMNS,
-    )
-
     p = sub.add_parser(
         "trace",
         help="trace candidates back in time: origin probability, flight time, launch speed, boundness",
@@ -114,12 +123,7 @@ def _check_out(path: Path, option: str, suffixes) -> Path:
 
 
 def run(args) -> int:
-    from ..catalog import CatalogError, read_catalog
-    from ..frames import resolve_solar
-    from ..galaxy import Galaxy
-    from ..galaxy.model import DEFAULT_GALAXY
-    from ..plots import trace_plot
-    from ..trace import DEFAULT_LMC_RADIUS, trace_catalog, trace_summary, write_trace_table
+    from ..plots import trace_plot  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     if args.samples < 1:
         raise CommandError(f"--samples {args.samples}: expected a positive number of samples per star")
@@ -130,8 +134,6 @@ def run(args) -> int:
             raise CommandError(f"{option} {value}: expected a positive number")
     lmc = None
     if args.lmc or args.lmc_mass is not None or args.lmc_radius is not None:
-        from ..galaxy.lmc import LMC
-
         try:
             lmc = LMC() if args.lmc_mass is None else LMC(m_lmc=args.lmc_mass)
         except ValueError as exc:
@@ -160,13 +162,11 @@ def run(args) -> int:
         if len(problems) > 1:
             print(f"swerve trace: {len(problems)} problems; nothing written", file=sys.stderr)
         return EXIT_ERROR
-    from ..measurement import distance_warning
-
     for hint in catalog.hints + (distance_warning(catalog, args.distance_prior),):
         if hint:
             print(f"swerve trace: warning: {hint}", file=sys.stderr)
 
-    from tqdm import tqdm
+    from tqdm import tqdm  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     with tqdm(total=catalog.n * args.samples, unit="path", desc="tracing", disable=args.no_progress,
               file=sys.stderr) as bar:

@@ -59,6 +59,7 @@ from scipy import integrate as sp_integrate
 from scipy import optimize
 
 from .. import units
+from ..frames import helio_to_galacto, resolve_solar
 from .params import Parameter
 
 __all__ = [
@@ -195,8 +196,6 @@ class LMC:
     def present_state(self, solar=None) -> tuple[np.ndarray, np.ndarray]:
         """Present Galactocentric position (kpc) and velocity (km/s) of the LMC's centre, each of
         shape (3,), under the solar parameters ``solar`` (default :data:`swerve.frames.DEFAULT_SOLAR`)."""
-        from ..frames import helio_to_galacto
-
         pos, vel = helio_to_galacto(self.ra_lmc, self.dec_lmc, self.d_lmc, self.pmra_lmc,
                                     self.pmdec_lmc, self.vlos_lmc, solar=solar)
         return pos[0], vel[0]
@@ -437,8 +436,6 @@ def lmc_orbit(galaxy, lmc: LMC | None = None, *, t_min=-3000.0, dt=1.0, friction
     -------
     LMCTrack
     """
-    from ..frames import resolve_solar
-
     lmc = LMC() if lmc is None else lmc
     if not isinstance(lmc, LMC):
         raise ValueError(f"lmc: expected a swerve.galaxy.lmc.LMC, got {type(lmc).__name__}")
