@@ -117,13 +117,13 @@ def run(args):
     import warnings
 
     from swerve.bank import build_bank
-    from swerve.population import _bank_region
+    from swerve.population import bank_region
     from swerve.sampling import ConvergenceWarning, posterior_warnings
 
     warnings.simplefilter("ignore", ConvergenceWarning)  # reported in the line of each fit
     emu, spec, setup, truth = _setup(args.emulator)
     galaxy = setup.galaxy_at(truth)
-    r_min, r_max = _bank_region(setup.selection, "v4.0")
+    r_min, r_max = bank_region(setup.selection, "v4.0")
     t0 = time.perf_counter()
     bank = build_bank(galaxy, args.bank, 20261205, t_max=setup.flight_time_max, dt=1.0, r_min_store=r_min,
                       r_max=r_max)
@@ -167,10 +167,10 @@ def run(args):
 
 def time_calls(args):
     from swerve.bank import build_bank
-    from swerve.population import _bank_region
+    from swerve.population import bank_region
 
     emu, spec, setup, truth = _setup(args.emulator)
-    r_min, r_max = _bank_region(setup.selection, "v4.0")
+    r_min, r_max = bank_region(setup.selection, "v4.0")
     bank = build_bank(setup.galaxy_at(truth), 4000, 11, t_max=setup.flight_time_max, dt=1.0, r_min_store=r_min, r_max=r_max)
     table = contaminated_catalog(setup, truth, args.n, 0.3, 11, bank)
     from threadpoolctl import threadpool_limits

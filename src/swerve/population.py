@@ -430,7 +430,9 @@ def _jsonable(obj):
     return jsonable(obj)
 
 
-def _bank_region(selection, solar):
+def bank_region(selection, solar):
+    """The galactocentric radii (r_min, r_max) in kpc a trajectory bank must cover for a selection:
+    its radius cuts, or its heliocentric distance cut plus the Sun's distance from the centre."""
     r_min = selection.r_min if selection.r_min is not None else 0.0
     r_sun = float(resolve_solar(solar).to_dict().get("galcen_distance", 8.122))
     if selection.r_max is not None:
@@ -485,7 +487,7 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
         raise ValueError(f"n: expected a positive integer number of stars, got {n!r}")
     sol = resolve_solar(solar)
-    r_min, r_max = _bank_region(selection, sol)
+    r_min, r_max = bank_region(selection, sol)
     if bank is None:
         opts = {"t_max": 300.0 if flight_time_max is None else float(flight_time_max), "dt": 1.0}
         opts.update(bank_options or {})

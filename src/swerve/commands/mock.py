@@ -275,7 +275,7 @@ def _build(cfg, params):
 
 def run(args) -> int:
     from ..bank import build_bank, load_bank, save_bank  # noqa: PLC0415 - lazy: keeps the CLI's start fast
-    from ..population import _bank_region, make_mock, write_mock  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..population import bank_region, make_mock, write_mock  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     cfg, params, schema = _config(args)
     if args.template:
@@ -295,7 +295,7 @@ def run(args) -> int:
     if bcfg["file"]:
         bank = load_bank(bcfg["file"])
     else:
-        r_min, r_max = _bank_region(selection, top["solar"])
+        r_min, r_max = bank_region(selection, top["solar"])
         bank = build_bank(galaxy, bcfg["size"], int(rng.integers(2 ** 31 - 1)), t_max=lau["flight_time_max"],
                           dt=bcfg["dt"], v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"], r_min_store=r_min, r_max=r_max)
         if bcfg["save"]:
