@@ -515,7 +515,8 @@ def make_mock(galaxy, launch, selection, error_model: ErrorModel, n: int, rng, b
         measured = None
     if error_model.distance_frac is None and np.any(obs["parallax"] <= 0):
         warnings.warn(f"mock: {int(np.sum(obs['parallax'] <= 0))} of {n} observed parallaxes are <= 0 and the "
-                      "error model gives no distance: swerve.catalog refuses those rows; add distance_frac",
+                      "error model gives no distance: fit or trace them under a distance prior (--distance-prior), "
+                      "or add distance_frac",
                       UserWarning, stacklevel=2)
     width = max(5, len(str(n)))
     t = Table()

@@ -131,8 +131,8 @@ def add_parser(sub):
     p.add_argument("--error-parallax", default=None, metavar="A[:B:P]|none", help="parallax error law, mas (default 0.02)")
     p.add_argument("--error-distance-frac", default=None, metavar="A[:B:P]|none",
                    help="fractional error law of an independent (spectrophotometric) distance (default 0.1); "
-                        "with 'none' only parallaxes are written, and observed parallaxes <= 0 make rows "
-                        "that swerve.catalog refuses")
+                        "with 'none' only parallaxes are written (some observed ones <= 0, as in a survey): fit and "
+                        "trace such a catalog under a distance prior (--distance-prior)")
     p.add_argument("--error-pm", default=None, metavar="A[:B:P]", help="proper-motion error law, mas/yr (default 0:0.01:1)")
     p.add_argument("--error-pm-corr", type=float, default=None, metavar="RHO", help="pmra-pmdec error correlation (default 0)")
     p.add_argument("--error-vlos", default=None, metavar="A[:B:P]", help="line-of-sight velocity error law, km/s (default 5)")
