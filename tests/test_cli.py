@@ -76,3 +76,18 @@ def test_fit_without_a_catalog_says_so(capsys):
     assert main(["fit"]) != 0
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "CATALOG" in err[0]
+
+
+def test_help_loads_neither_numba_nor_astropy():
+    """Building every parser (what `swerve --help` does) imports only light modules: the help
+    texts quote swerve.vocabulary, the library is imported by each command's run. A check of the
+    modules loaded, not of time."""
+    import subprocess
+    import sys
+
+    code = ("import sys\nfrom swerve.cli import main\ntry:\n    main(['--help'])\nexcept SystemExit:\n    pass\n"
+            "for cmd in ('fit', 'trace', 'mock', 'galaxy'):\n    try:\n        main([cmd, '--help'])\n"
+            "    except SystemExit:\n        pass\n"
+            "print(sorted(m for m in ('numba', 'astropy', 'scipy', 'matplotlib') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip().splitlines()[-1] == "[]"

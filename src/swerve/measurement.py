@@ -50,6 +50,7 @@ from scipy.special import log_ndtr, ndtri_exp
 from .catalog import Catalog
 from .frames import PM_KMS_PER_KPC_MASYR, helio_to_galacto, resolve_solar
 from .units import to_internal
+from .vocabulary import DISTANCE_PRIORS
 
 try:  # Python >= 3.11
     import tomllib
@@ -76,7 +77,6 @@ __all__ = [
 ERROR_D_REF = 10.0
 
 #: Distance priors for stars whose distance comes from the parallax (see :func:`draw_samples`).
-DISTANCE_PRIORS = ("none", "uniform-volume", "exponential-length")
 
 
 # --------------------------------------------------------------------------------------------

@@ -83,6 +83,7 @@ from .orbits import (
     as_vectors,
     failure_summary,
 )
+from .vocabulary import DEFAULT_LMC_RADIUS
 
 __all__ = [
     "DEFAULT_LMC_RADIUS",
@@ -98,12 +99,6 @@ __all__ = [
     "stop_names",
 ]
 
-#: Default radius of the LMC-origin test, kpc.  A choice, stated: a little over three scale
-#: lengths of the LMC's stellar disk (exponential scale length ~1.5 kpc, van der Marel 2001,
-#: AJ 122, 1827; from memory), well inside the Hernquist scale radius of the whole LMC (16 kpc
-#: for 1.38e11 Msun), and a few times the spread that a 10% distance error at 50 kpc gives a
-#: traced path.
-DEFAULT_LMC_RADIUS = 5.0
 
 _NS = 12
 _A = np.ascontiguousarray(_dc.A[:_NS, :_NS], dtype=np.float64)

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..config import template
+from ..vocabulary import DISTANCE_PRIORS
 from ._common import (
     EXIT_OK,
     METAVAR,
@@ -59,7 +60,6 @@ _OPTION_KEYS = {"--seed": ("sampler", "seed", "seed"), "--max-steps": ("sampler"
 
 
 def _add_distance_options(p):
-    from ..measurement import DISTANCE_PRIORS  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     p.add_argument("--distance-prior", default=None, choices=DISTANCE_PRIORS,
                    help="distance prior of stars whose distance comes from the parallax (overrides [errors] "

@@ -6,24 +6,14 @@ import argparse
 import sys
 from pathlib import Path
 
-# at the top although this is a command module: add_parser needs swerve.trace (the help quotes its
-# defaults and columns), so building the parser loads it, and with it the other modules named here
-from ..catalog import CatalogError, read_catalog
-from ..frames import resolve_solar
-from ..galaxy import Galaxy
-from ..galaxy.lmc import LMC
-from ..galaxy.model import DEFAULT_GALAXY
-from ..measurement import DISTANCE_PRIORS, distance_warning
-from ..trace import (
+from ..vocabulary import (
     DEFAULT_LAUNCH_RADIUS,
     DEFAULT_LMC_RADIUS,
     DEFAULT_MAX_TIME,
     DEFAULT_RADIUS,
+    DISTANCE_PRIORS,
     LMC_TRACE_COLUMNS,
     TRACE_COLUMNS,
-    trace_catalog,
-    trace_summary,
-    write_trace_table,
 )
 from ._common import (
     EXIT_ERROR,
@@ -123,7 +113,14 @@ def _check_out(path: Path, option: str, suffixes) -> Path:
 
 
 def run(args) -> int:
+    from ..catalog import CatalogError, read_catalog  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..frames import resolve_solar  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..galaxy import Galaxy  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..galaxy.lmc import LMC  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..galaxy.model import DEFAULT_GALAXY  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..measurement import distance_warning  # noqa: PLC0415 - lazy: keeps the CLI's start fast
     from ..plots import trace_plot  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..trace import trace_catalog, trace_summary, write_trace_table  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     if args.samples < 1:
         raise CommandError(f"--samples {args.samples}: expected a positive number of samples per star")
