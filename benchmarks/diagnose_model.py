@@ -8,6 +8,7 @@ from the stars, and where calibration misses sit.
     python benchmarks/diagnose_model.py along --param m_disk # emulator against precise simulations
     python benchmarks/diagnose_model.py sandwich             # information equality at the truth
     python benchmarks/diagnose_model.py prior-cut            # what a face alone does to z (Monte Carlo)
+    python benchmarks/diagnose_model.py conditional          # v_tf | v_r: linear vs 1/v_r model, per cell
 
 ``cells``: draws one error-free and one realistic-error mock (full simulation, 4000 stars) at the
 power grid's q_z = 1 Galaxy and prints the smallest standard deviation of each emulated cell
@@ -171,6 +172,73 @@ def shape(args):
                 line.append(f"{mt:5.1f}/{mu[1] + b * (wv @ x[sel, 0] - mu[0]):5.1f}/{np.sqrt(wv @ (x[sel, 1] - mt) ** 2):4.1f}")
             print(f"  cell {cc:2d} conditional sd {np.sqrt(C[1, 1] - C[1, 0] ** 2 / C[0, 0]):5.1f}: " + " ".join(line))
 
+
+def _cond_fit(vr, y, w, kind):
+    """Weighted fit of v_tf given v_r: ``linear`` (the cell Gaussian's conditional: mean a + b v_r,
+    one spread) or ``inverse`` (mean a + b / v_r, spread c / v_r: a Gaussian in v_tf v_r with mean
+    linear in v_r). Returns a function giving each star's log density of v_tf."""
+    v = np.maximum(vr, V_R_FLOOR)
+    if kind == "linear":
+        X, t = np.column_stack([np.ones_like(v), v]), y
+    else:
+        X, t = np.column_stack([np.ones_like(v), v]), y * v  # v_tf v_r = a v_r + b
+    beta = np.linalg.solve(X.T @ (X * w[:, None]), X.T @ (w * t))
+    s2 = float(w @ (t - X @ beta) ** 2 / w.sum())
+
+    def logpdf(vr2, y2):
+        v2 = np.maximum(vr2, V_R_FLOOR)
+        X2 = np.column_stack([np.ones_like(v2), v2])
+        t2 = y2 if kind == "linear" else y2 * v2
+        lp = -0.5 * (t2 - X2 @ beta) ** 2 / s2 - 0.5 * np.log(2 * np.pi * s2)
+        return lp if kind == "linear" else lp + np.log(v2)  # the Jacobian of v_tf -> v_tf v_r
+
+    return logpdf
+
+
+#: v_r below which the inverse model holds v_r fixed (km/s): the selection keeps outgoing stars,
+#: a few with v_r near 0
+V_R_FLOOR = 100.0
+
+
+def conditional(args):
+    """Per cell, the two conditional models of v_tf given v_r fitted to one half of the error-free
+    population of the grid Galaxy (q_y = 1, q_z = ``--q-z``, launch slope -0.5) and scored on the
+    other half: the weighted mean log density of v_tf | v_r per star (higher: the model describes
+    the stars better)."""
+    from swerve.emulate import load
+    from swerve.population import population_from_bank
+    from swerve.simulate import training_setup_from_dict
+    from swerve.summaries import SummarySpec, folded_components
+    from swerve.validation import _grid_theta, validation_bank
+
+    emu = load(args.emulator)
+    spec = SummarySpec.from_dict(emu.metadata["summaries"])
+    setup = training_setup_from_dict(emu.metadata["config"])
+    gal_t, _ = _grid_theta(setup, emu, 1.0, args.q_z)
+    gal = setup.galaxy_at(gal_t)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        pop = population_from_bank(validation_bank(setup, gal, 7, args.n_orbits), setup.launch_at({"slope": -0.5}),
+                                   selection=setup.selection, galaxy=gal, flight_time_max=setup.flight_time_max,
+                                   rng=np.random.default_rng(7))
+    u, w, c = folded_components(pop.pos, pop.vel), pop.weight, spec.cell_index(pop.pos)
+    half = np.random.default_rng(3).random(len(w)) < 0.5
+    print(f"q_z = {args.q_z}, slope -0.5, error-free; per cell: share of stars, held-out mean log density of "
+          "v_tf | v_r per star: linear (mean a + b v_r, one spread) / inverse (mean a + b / v_r, spread c / v_r)")
+    tot = np.zeros(2)
+    for cc in range(spec.n_cells):
+        m = c == cc
+        share = w[m].sum() / w.sum()
+        if share < 0.02:
+            continue
+        lps = []
+        for kind in ("linear", "inverse"):
+            fit = _cond_fit(u[m & half, 0], u[m & half, 1], w[m & half], kind)
+            ww = w[m & ~half]
+            lps.append(float(ww @ fit(u[m & ~half, 0], u[m & ~half, 1]) / ww.sum()))
+        tot += share * np.array(lps)
+        print(f"  cell {cc:2d}  {share:.3f}  {lps[0]:7.3f} / {lps[1]:7.3f}")
+    print(f"  share-weighted over these cells: {tot[0]:.3f} / {tot[1]:.3f}")
 
 def edges(args):
     d = json.load(open(args.report))
@@ -384,6 +452,10 @@ def main():
     sh = sub.add_parser("shape")
     sh.add_argument("--emulator", default="emulators/default")
     sh.add_argument("--q-z", type=float, default=1.0)
+    cd = sub.add_parser("conditional")
+    cd.add_argument("--emulator", default="emulators/default")
+    cd.add_argument("--q-z", type=float, default=1.0)
+    cd.add_argument("--n-orbits", type=int, default=0, help="orbits per bank (0: the training configuration's)")
     for name in ("fixed", "along", "sandwich"):
         f = sub.add_parser(name)
         f.add_argument("--emulator", default="emulators/default")
@@ -405,7 +477,8 @@ def main():
     e = sub.add_parser("edges")
     e.add_argument("report", help="validation.json of a swerve validate run with calibration")
     args = ap.parse_args()
-    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along, "sandwich": sandwich, "prior-cut": prior_cut}[args.what](args)
+    {"cells": cells, "shape": shape, "edges": edges, "fixed": fixed, "along": along, "sandwich": sandwich, "prior-cut": prior_cut,
+     "conditional": conditional}[args.what](args)
 
 
 if __name__ == "__main__":
