@@ -518,10 +518,13 @@ def terminal_summary(summary, catalog_path, emulator_path) -> str:
                      f"star(s): effective sample size {imp['ess']:.0f} of {imp['n_samples']}, "
                      f"Pareto k {imp['pareto_k']:.2f}")
     lines.append("")
-    lines.append(f"  {'parameter':<10} {'median':>11} {'68% interval':>26} {'95% interval':>26} {'tau':>6}")
+    # tau: the chain's autocorrelation time; a fit without a chain (laplace-is) has none
+    has_tau = any(p.get("tau") is not None and np.isfinite(p["tau"]) for p in summary["parameters"].values())
+    lines.append(f"  {'parameter':<10} {'median':>11} {'68% interval':>26} {'95% interval':>26}"
+                 + (f" {'tau':>6}" if has_tau else ""))
     for n, p in summary["parameters"].items():
         lines.append(f"  {n:<10} {p['median']:11.4g} [{p['ci68'][0]:11.4g}, {p['ci68'][1]:11.4g}] "
-                     f"[{p['ci95'][0]:11.4g}, {p['ci95'][1]:11.4g}] {p['tau']:6.1f}")
+                     f"[{p['ci95'][0]:11.4g}, {p['ci95'][1]:11.4g}]" + (f" {p['tau']:6.1f}" if has_tau else ""))
     for n, v in summary["fixed"].items():
         lines.append(f"  {n:<10} {v:11.4g}   (fixed)")
     if summary["probabilities"]:
