@@ -14,12 +14,12 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
+from conftest import galpy_lmc_reference
 from swerve import units
 from swerve.galaxy import Galaxy
 from swerve.galaxy.lmc import (
     LMC,
     LMC_PARAMETERS,
-    LMCTrack,
     friction_acceleration,
     hernquist_acceleration,
     jeans_dispersion_table,
@@ -176,50 +176,9 @@ def test_against_galpy_moving_object_and_noninertial_frame(galaxy):
     # Galactic Centre. swerve uses the same LMC orbit, tabulated.  Measured agreement ~1e-9 kpc.
     import astropy.units as u
     from galpy.orbit import Orbit
-    from galpy.potential import (
-        HernquistPotential,
-        KeplerPotential,
-        MiyamotoNagaiPotential,
-        MovingObjectPotential,
-        NFWPotential,
-        NonInertialFrameForce,
-    )
-    from galpy.util import conversion
-    from scipy.interpolate import CubicSpline
 
-    ro, vo = 8.0, 220.0
-    p = galaxy.params
-    mw = [KeplerPotential(amp=p["m_bh"] * u.Msun, ro=ro, vo=vo),
-          HernquistPotential(amp=2 * p["m_bulge"] * u.Msun, a=p["a_bulge"] * u.kpc, ro=ro, vo=vo),
-          MiyamotoNagaiPotential(amp=p["m_disk"] * u.Msun, a=p["a_disk"] * u.kpc,
-                                 b=p["b_disk"] * u.kpc, ro=ro, vo=vo),
-          NFWPotential(amp=p["m_halo"] * u.Msun, a=p["r_s"] * u.kpc, ro=ro, vo=vo)]
-
-    def to_galpy(x, v):
-        R = math.hypot(x[0], x[1])
-        return [R / ro, (x[0] * v[0] + x[1] * v[1]) / R / vo, (x[0] * v[1] - x[1] * v[0]) / R / vo,
-                x[2] / ro, v[2] / vo, math.atan2(x[1], x[0])]
-
-    lmc = LMC()
-    x0, v0 = lmc.present_state()
-    T = 520.0
-    o = Orbit(to_galpy(x0, v0), ro=ro, vo=vo)
-    o.integrate(np.linspace(0.0, -T, 40001) * u.Myr, mw, method="dop853_c")
-    tg = np.arange(-T, 1e-9, 1.0)
-    X = np.stack([o.x(tg * u.Myr), o.y(tg * u.Myr), o.z(tg * u.Myr)], axis=1)
-    V = np.stack([o.vx(tg * u.Myr), o.vy(tg * u.Myr), o.vz(tg * u.Myr)], axis=1)
-    A0 = hernquist_acceleration(-X, lmc.gm, lmc.a_lmc)
-    tr = LMCTrack(t=tg, pos=X, vel=V, acc=galaxy.acceleration(X), gc_acc=A0, gc_vel=np.zeros_like(X),
-                  lmc=lmc, friction=False, reflex=True, galaxy=galaxy.to_dict(), solar={})
-
-    tu = conversion.time_in_Gyr(vo, ro) * 1000.0
-    fu = conversion.force_in_kmsMyr(vo, ro)
-    tf = np.linspace(-T, 0.0, 10401)
-    Xf = np.stack([o.x(tf * u.Myr), o.y(tf * u.Myr), o.z(tf * u.Myr)], axis=1)
-    a0 = CubicSpline(tf / tu, hernquist_acceleration(-Xf, lmc.gm, lmc.a_lmc) * units.KMS_TO_KPC_PER_MYR / fu)
-    frame = NonInertialFrameForce(a0=[lambda t, k=k: a0(t)[..., k] for k in range(3)], ro=ro, vo=vo)
-    moving = MovingObjectPotential(o, HernquistPotential(amp=2 * lmc.m_lmc * u.Msun, a=lmc.a_lmc * u.kpc,
-                                                         ro=ro, vo=vo), ro=ro, vo=vo)
+    g = galpy_lmc_reference(galaxy, 520.0, 40001, 10401)
+    tr, to_galpy, ro, vo = g["track"], g["to_galpy"], g["ro"], g["vo"]
     rng = np.random.default_rng(3)
     xs = rng.normal(size=(4, 3))
     xs *= rng.uniform(20.0, 80.0, 4)[:, None] / np.linalg.norm(xs, axis=1)[:, None]
@@ -228,7 +187,7 @@ def test_against_galpy_moving_object_and_noninertial_frame(galaxy):
     ref = []
     for i in range(4):
         s = Orbit(to_galpy(xs[i], vs[i]), ro=ro, vo=vo)
-        s.integrate(np.linspace(t0, 0.0, 2001) * u.Myr, mw + [moving, frame], method="dop853_c")
+        s.integrate(np.linspace(t0, 0.0, 2001) * u.Myr, g["pot"], method="dop853_c")
         ref.append([s.x(0 * u.Myr), s.y(0 * u.Myr), s.z(0 * u.Myr), s.vx(0 * u.Myr), s.vy(0 * u.Myr),
                     s.vz(0 * u.Myr)])
     ref = np.array(ref)

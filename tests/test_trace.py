@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
+from conftest import catalog_from_galacto
 from swerve.catalog import read_catalog
 from swerve.cli import build_parser, main
-from swerve.frames import galacto_to_helio
 from swerve.galaxy import Galaxy
 from swerve.measurement import draw_samples
 from swerve.trace import (
@@ -24,25 +24,6 @@ from swerve.trace import (
 DEMO = Path(__file__).resolve().parents[1] / "examples" / "demo.ecsv"
 ZERO_MASS = {"m_bh": 0.0, "m_bulge": 0.0, "m_disk": 0.0, "m_halo": 0.0}
 MYR_PER_KPC_KMS = 977.792221  # 1 kpc / (1 km/s) in Myr (astropy units; common knowledge)
-
-
-def _catalog_from_galacto(path, pos, vel, *, dist_frac=1e-5, pm_err=1e-6, vlos_err=1e-3):
-    """An ECSV catalog of stars with the given Galactocentric phase-space points, tiny errors."""
-    h = galacto_to_helio(np.atleast_2d(pos), np.atleast_2d(vel))
-    n = len(h["ra"])
-    t = Table()
-    t["id"] = [f"s{i}" for i in range(n)]
-    t["ra"], t["dec"] = h["ra"], h["dec"]
-    t["ra"].unit = t["dec"].unit = "deg"
-    t["distance"], t["distance_err"] = h["distance"], dist_frac * h["distance"]
-    t["distance"].unit = t["distance_err"].unit = "kpc"
-    for name in ("pmra", "pmdec"):
-        t[name], t[f"{name}_err"] = h[name], np.full(n, pm_err)
-        t[name].unit = t[f"{name}_err"].unit = "mas / yr"
-    t["vlos"], t["vlos_err"] = h["vlos"], np.full(n, vlos_err)
-    t["vlos"].unit = t["vlos_err"].unit = "km / s"
-    t.write(path, format="ascii.ecsv", overwrite=True)
-    return path
 
 
 # ----------------------------------------------------------------------------- statistics ---
@@ -91,7 +72,7 @@ def test_zero_mass_galaxy_flight_time_is_distance_over_speed(tmp_path):
     u = np.array([[0.3, 0.5, 0.81], [-0.6, 0.2, -0.77]])
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     speed = np.array([600.0, 1100.0])
-    path = _catalog_from_galacto(tmp_path / "radial.ecsv", r[:, None] * u, speed[:, None] * u)
+    path = catalog_from_galacto(tmp_path / "radial.ecsv", r[:, None] * u, speed[:, None] * u)
     args = ["trace", str(path), "--samples", "32", "--out", str(tmp_path / "t.ecsv"), "--no-plot", "--no-progress"]
     for name, value in ZERO_MASS.items():
         args += ["--param", f"{name}={value:g}"]
@@ -110,7 +91,7 @@ def test_circular_disk_orbit_has_no_galactic_centre_origin(tmp_path):
     vc = float(g.circular_velocity(R)[0])
     pos = np.array([R * np.cos(phi), R * np.sin(phi), 0.0])
     vel = vc * np.array([np.sin(phi), -np.cos(phi), 0.0])  # the Sun's sense of rotation (+y at x < 0)
-    path = _catalog_from_galacto(tmp_path / "disk.ecsv", pos, vel, dist_frac=0.02, pm_err=0.02, vlos_err=2.0)
+    path = catalog_from_galacto(tmp_path / "disk.ecsv", pos, vel, dist_frac=0.02, pm_err=0.02, vlos_err=2.0)
     res = trace_catalog(read_catalog(path), g, k=48, rng=4, max_time=500.0)
     assert res.p_origin[0] == 0.0 and res.n_pass[0] == 0 and np.isnan(res.t_flight[0])
     assert res.r_min[0] == pytest.approx(R, rel=0.1)

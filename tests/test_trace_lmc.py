@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
+from conftest import catalog_from_galacto, galpy_lmc_reference
 from swerve.cli import main
-from swerve.frames import galacto_to_helio
 from swerve.galaxy import Galaxy
-from swerve.galaxy.lmc import LMC, LMCTrack, hernquist_acceleration, lmc_orbit
+from swerve.galaxy.lmc import LMC, lmc_orbit
 from swerve.orbits_lmc import STOP_GC, STOP_NO_RETURN, integrate_lmc
 from swerve.trace import LMC_TRACE_COLUMNS, TRACE_COLUMNS, trace_orbits
 
@@ -45,31 +45,7 @@ def galpy_launches(galaxy):
 
     import astropy.units as u
     from galpy.orbit import Orbit
-    from galpy.potential import (
-        HernquistPotential,
-        KeplerPotential,
-        MiyamotoNagaiPotential,
-        MovingObjectPotential,
-        NFWPotential,
-        NonInertialFrameForce,
-    )
-    from galpy.util import conversion, galpyWarningVerbose
-    from scipy.interpolate import CubicSpline
-
-    from swerve import units
-
-    ro, vo = 8.0, 220.0
-    p = galaxy.params
-    mw = [KeplerPotential(amp=p["m_bh"] * u.Msun, ro=ro, vo=vo),
-          HernquistPotential(amp=2 * p["m_bulge"] * u.Msun, a=p["a_bulge"] * u.kpc, ro=ro, vo=vo),
-          MiyamotoNagaiPotential(amp=p["m_disk"] * u.Msun, a=p["a_disk"] * u.kpc, b=p["b_disk"] * u.kpc,
-                                 ro=ro, vo=vo),
-          NFWPotential(amp=p["m_halo"] * u.Msun, a=p["r_s"] * u.kpc, ro=ro, vo=vo)]
-
-    def to_galpy(x, v):
-        R = math.hypot(x[0], x[1])
-        return [R / ro, (x[0] * v[0] + x[1] * v[1]) / R / vo, (x[0] * v[1] - x[1] * v[0]) / R / vo,
-                x[2] / ro, v[2] / vo, math.atan2(x[1], x[0])]
+    from galpy.util import galpyWarningVerbose
 
     def state(o, t):
         return (np.array([o.x(t * u.Myr), o.y(t * u.Myr), o.z(t * u.Myr)]),
@@ -77,26 +53,8 @@ def galpy_launches(galaxy):
 
     with warnings.catch_warnings():  # galpy names the integrator it uses in a verbose warning
         warnings.simplefilter("ignore", galpyWarningVerbose)
-        lmc = LMC()
-        x0, v0 = lmc.present_state()
-        T = 320.0
-        o = Orbit(to_galpy(x0, v0), ro=ro, vo=vo)
-        o.integrate(np.linspace(0.0, -T, 32001) * u.Myr, mw, method="dop853_c")
-        tg = np.arange(-T, 1e-9, 1.0)
-        X = np.stack([o.x(tg * u.Myr), o.y(tg * u.Myr), o.z(tg * u.Myr)], axis=1)
-        V = np.stack([o.vx(tg * u.Myr), o.vy(tg * u.Myr), o.vz(tg * u.Myr)], axis=1)
-        A0 = hernquist_acceleration(-X, lmc.gm, lmc.a_lmc)
-        track = LMCTrack(t=tg, pos=X, vel=V, acc=galaxy.acceleration(X), gc_acc=A0, gc_vel=np.zeros_like(X),
-                         lmc=lmc, friction=False, reflex=True, galaxy=galaxy.to_dict(), solar={})
-        tu = conversion.time_in_Gyr(vo, ro) * 1000.0
-        fu = conversion.force_in_kmsMyr(vo, ro)
-        tf = np.linspace(-T, 0.0, 6401)
-        Xf = np.stack([o.x(tf * u.Myr), o.y(tf * u.Myr), o.z(tf * u.Myr)], axis=1)
-        a0 = CubicSpline(tf / tu, hernquist_acceleration(-Xf, lmc.gm, lmc.a_lmc) * units.KMS_TO_KPC_PER_MYR / fu)
-        frame = NonInertialFrameForce(a0=[lambda t, k=k: a0(t)[..., k] for k in range(3)], ro=ro, vo=vo)
-        moving = MovingObjectPotential(o, HernquistPotential(amp=2 * lmc.m_lmc * u.Msun, a=lmc.a_lmc * u.kpc,
-                                                             ro=ro, vo=vo), ro=ro, vo=vo)
-        pot = mw + [moving, frame]
+        ref = galpy_lmc_reference(galaxy, 320.0, 32001, 6401)
+        o, track, pot, to_galpy, ro, vo = (ref[k] for k in ("lmc_orbit", "track", "pot", "to_galpy", "ro", "vo"))
         # from the LMC's centre (3 pc off it, along the kick), 900 km/s relative to it
         XL, VL = state(o, T_LMC_LAUNCH)
         kick = np.array([0.3, -0.8, 0.52])
@@ -244,25 +202,6 @@ def test_early_stop_changes_no_result_large(galaxy):
 
 
 # ------------------------------------------------------------------- command line ---
-def _catalog(path, pos, vel):
-    """An ECSV catalog of stars at the given Galactocentric states, tiny errors."""
-    h = galacto_to_helio(np.atleast_2d(pos), np.atleast_2d(vel))
-    n = len(h["ra"])
-    t = Table()
-    t["id"] = [f"s{i}" for i in range(n)]
-    t["ra"], t["dec"] = h["ra"], h["dec"]
-    t["ra"].unit = t["dec"].unit = "deg"
-    t["distance"], t["distance_err"] = h["distance"], 1e-5 * h["distance"]
-    t["distance"].unit = t["distance_err"].unit = "kpc"
-    for name in ("pmra", "pmdec"):
-        t[name], t[f"{name}_err"] = h[name], np.full(n, 1e-6)
-        t[name].unit = t[f"{name}_err"].unit = "mas / yr"
-    t["vlos"], t["vlos_err"] = h["vlos"], np.full(n, 1e-3)
-    t["vlos"].unit = t["vlos_err"].unit = "km / s"
-    t.write(path, format="ascii.ecsv", overwrite=True)
-    return path
-
-
 def test_cli_lmc_finds_an_lmc_star(galaxy, tmp_path, capsys):
     """`swerve trace --lmc`: a star launched from the LMC's centre (in the LMC-perturbed default
     Galaxy with the track the command makes itself) and a Galactic-Centre star; table columns,
@@ -274,7 +213,7 @@ def test_cli_lmc_finds_an_lmc_star(galaxy, tmp_path, capsys):
     star = integrate_lmc(galaxy, track, X + 0.003 * kick / 700.0, V + kick, -120.0)
     d = np.array([0.5, -0.3, 0.81]) / np.linalg.norm([0.5, -0.3, 0.81])
     gc = integrate_lmc(galaxy, track, 0.003 * d, 1100.0 * d, -60.0)
-    path = _catalog(tmp_path / "two.ecsv", np.vstack([star.pos, gc.pos]), np.vstack([star.vel, gc.vel]))
+    path = catalog_from_galacto(tmp_path / "two.ecsv", np.vstack([star.pos, gc.pos]), np.vstack([star.vel, gc.vel]))
     out, plot = tmp_path / "t.ecsv", tmp_path / "t.png"
     rc = main(["trace", str(path), "--lmc-mass", f"{m_lmc:g}", "--lmc-radius", "3", "--max-time", "300",
                "--samples", "8", "--out", str(out), "--plot", str(plot), "--no-progress"])
