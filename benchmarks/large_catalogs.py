@@ -15,7 +15,7 @@ compared in units of emcee's posterior standard deviation, beside their Monte Ca
 
 ``--variants new old`` runs the Laplace path twice: ``new``, laplace_is's defaults (a mixture
 proposal over up to 4 maxima, a defensive component); ``old``, one Student-t and no defensive
-component (``max_modes=1, defensive=0``: the path before 2026-12-06); ``single``, one Student-t with
+component (``max_modes=1, defensive=0``: the path before 2026-12-05); ``single``, one Student-t with
 the defensive component. Where the weights are unreliable the path goes on as a fit does, with
 emcee started from its draws (timed, and added to the path's time).
 ``--mocks K`` fits K mocks per size (mock seeds ``--seed`` + N + i); ``--emcee-cap N:0`` skips emcee
@@ -294,7 +294,7 @@ def main(argv=None):
                     help="print the emcee progress bar's total at each change (its estimate of the run's length)")
     ap.add_argument("--mocks", type=int, default=1, help="mocks per size (mock seeds seed + N + i)")
     ap.add_argument("--variants", nargs="+", default=["new"], choices=sorted(VARIANTS),
-                    help="laplace_is settings, each run in turn (old: as before 2026-12-06)")
+                    help="laplace_is settings, each run in turn (old: as before 2026-12-05)")
     ap.add_argument("--bank-size", type=int, default=8000)
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--emulator", default=None)

@@ -399,7 +399,6 @@ def _t_logpdf(U, mean, L, df):
 
 def _mahalanobis2(U, centre, L):
     """Squared distances of the rows of ``U`` from ``centre`` in the metric ``(L Lᵀ)^-1``."""
-
     s = solve_triangular(L, (np.atleast_2d(U) - centre).T, lower=True)
     return np.sum(s * s, axis=0)
 
@@ -731,7 +730,7 @@ def laplace_is(posterior, *, seed: int, x_map=None, n_draws: int = DEFAULT_DRAWS
         A tqdm bar over the draws (stderr).
     max_modes : int
         At most this many maxima in a mixture proposal (1: a single Student-t, as before
-        2026-12-06).
+        2026-12-05).
     mode_dip : float
         Two points are in separate basins when the log posterior between them dips by more
         than this (:func:`find_maxima`).
