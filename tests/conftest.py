@@ -46,6 +46,7 @@ def galpy_lmc_reference(galaxy, t_back, n_orbit, n_force):
         MovingObjectPotential,
         NFWPotential,
         NonInertialFrameForce,
+        PlummerPotential,
     )
     from galpy.util import conversion
     from scipy.interpolate import CubicSpline
@@ -55,8 +56,11 @@ def galpy_lmc_reference(galaxy, t_back, n_orbit, n_force):
 
     ro, vo = 8.0, 220.0
     p = galaxy.params
+    bulge = (PlummerPotential(amp=p["m_bulge"] * u.Msun, b=p["b_bulge"] * u.kpc, ro=ro, vo=vo)
+             if "b_bulge" in p else
+             HernquistPotential(amp=2 * p["m_bulge"] * u.Msun, a=p["a_bulge"] * u.kpc, ro=ro, vo=vo))
     mw = [KeplerPotential(amp=p["m_bh"] * u.Msun, ro=ro, vo=vo),
-          HernquistPotential(amp=2 * p["m_bulge"] * u.Msun, a=p["a_bulge"] * u.kpc, ro=ro, vo=vo),
+          bulge,
           MiyamotoNagaiPotential(amp=p["m_disk"] * u.Msun, a=p["a_disk"] * u.kpc, b=p["b_disk"] * u.kpc,
                                  ro=ro, vo=vo),
           NFWPotential(amp=p["m_halo"] * u.Msun, a=p["r_s"] * u.kpc, ro=ro, vo=vo)]

@@ -91,3 +91,13 @@ def test_help_loads_neither_numba_nor_astropy():
             "print(sorted(m for m in ('numba', 'astropy', 'scipy', 'matplotlib') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip().splitlines()[-1] == "[]"
+
+
+def test_galaxy_prints_each_value_with_its_models_source(capsys):
+    """swerve-mw-2's values carry its own sources (not the parameter declarations'), and its
+    v_c(8.122 kpc) = 244.0 km/s (cf. tests/test_galaxy.py)."""
+    assert main(["galaxy", "--model", "swerve-mw-2"]) == 0
+    out = capsys.readouterr().out
+    assert "PlummerBulge" in out and "244.0" in out
+    assert "source: Bajkova & Bobylev 2016" in out and "Law & Majewski" not in out
+    assert "Halo density is positive everywhere." in out

@@ -13,6 +13,7 @@ from swerve.galaxy import (
     MiyamotoNagaiDisk,
     NegativeDensityWarning,
     NFWHaloPotentialFlat,
+    PlummerBulge,
     PointMass,
     negative_density_radius_scaled,
 )
@@ -20,12 +21,13 @@ from swerve.galaxy import (
 COMPONENTS = [
     PointMass(m_bh=4.0e6),
     HernquistBulge(m_bulge=3.4e10, a_bulge=0.7),
+    PlummerBulge(m_bulge=1.03e10, b_bulge=0.2672),
     MiyamotoNagaiDisk(m_disk=1.0e11, a_disk=6.5, b_disk=0.26),
     NFWHaloPotentialFlat(m_halo=0.76e12, r_s=24.8, q_y=1.0, q_z=1.0),
     NFWHaloPotentialFlat(m_halo=0.76e12, r_s=24.8, q_y=1.15, q_z=0.8),
     NFWHaloPotentialFlat(m_halo=0.76e12, r_s=24.8, q_y=0.9, q_z=1.3),
 ]
-IDS = ["point_mass", "hernquist", "miyamoto_nagai", "nfw_sph", "nfw_triax_oblate", "nfw_triax_prolate"]
+IDS = ["point_mass", "hernquist", "plummer", "miyamoto_nagai", "nfw_sph", "nfw_triax_oblate", "nfw_triax_prolate"]
 
 
 def _points(rng, n=60):
@@ -100,10 +102,12 @@ def test_negative_density_example_values():
 def test_spherical_halo_has_no_negative_density():
     assert math.isinf(negative_density_radius_scaled(1.0, 3.0))
     assert Galaxy.default().negative_density_region() is None
+    # swerve-mw-2's halo is flattened in the density: positive for every axis ratio
+    assert Galaxy.from_name("swerve-mw-2", q_y=1.2, q_z=0.7).negative_density_region() is None
 
 
 def test_galaxy_warns_when_domain_reaches_negative_density():
-    g = Galaxy.default(q_z=0.7)
+    g = Galaxy.from_name("swerve-mw-1", q_z=0.7)
     with pytest.warns(NegativeDensityWarning, match="negative density"):
         assert g.check_domain(np.array([20.0, 80.0]), what="orbits")
     assert not g.check_domain(10.0)  # inside r_neg = 0.7 * 2.05 * 24.8 kpc = 35.6 kpc
@@ -120,6 +124,8 @@ def _gala_equivalent(comp):
         return gala_pot.KeplerPotential(m=v["m_bh"], units=galactic)
     if isinstance(comp, HernquistBulge):
         return gala_pot.HernquistPotential(m=v["m_bulge"], c=v["a_bulge"], units=galactic)
+    if isinstance(comp, PlummerBulge):
+        return gala_pot.PlummerPotential(m=v["m_bulge"], b=v["b_bulge"], units=galactic)
     if isinstance(comp, MiyamotoNagaiDisk):
         return gala_pot.MiyamotoNagaiPotential(m=v["m_disk"], a=v["a_disk"], b=v["b_disk"], units=galactic)
     if isinstance(comp, NFWHaloPotentialFlat):
@@ -146,8 +152,8 @@ def test_components_agree_with_gala(comp, rng):
 
 
 def test_composite_agrees_with_gala(rng):
-    """The default Galaxy with a triaxial halo agrees with gala's CompositePotential to 1e-10."""
-    g = Galaxy.default(q_y=1.1, q_z=0.85)
+    """swerve-mw-1 with a triaxial halo agrees with gala's CompositePotential to 1e-10."""
+    g = Galaxy.from_name("swerve-mw-1", q_y=1.1, q_z=0.85)
     ref = gala_pot.CompositePotential()
     for i, c in enumerate(g.components):
         ref[str(i)] = _gala_equivalent(c)
@@ -190,9 +196,9 @@ def test_four_part_model_circular_velocities():
 
 
 def test_default_galaxy_inside_measured_ranges():
-    """v_c(R0) against Eilers et al. 2019 (229.0 km/s, systematics 2-5%); v_esc(50 kpc) against
-    Williams et al. 2017 (379 +34/-28 km/s); and the values stated for the default model."""
-    g = Galaxy.default()
+    """swerve-mw-1 (the default): v_c(R0) against Eilers et al. 2019 (229.0 km/s, systematics 2-5%); v_esc(50 kpc)
+    against Williams et al. 2017 (379 +34/-28 km/s); and the values stated for the model."""
+    g = Galaxy.from_name("swerve-mw-1")
     vc = g.circular_velocity(8.122)[0]
     assert vc == pytest.approx(232.0, abs=1.0)  # stated in the foundation issue
     assert abs(vc - 229.0) < 0.05 * 229.0
@@ -203,9 +209,60 @@ def test_default_galaxy_inside_measured_ranges():
     assert 521 - 30 <= vesc_local <= 521 + 46 + 100  # untruncated potential: an upper bound only
 
 
+def test_mw2_reproduces_its_published_circular_speed():
+    """swerve-mw-2 is model III of Bajkova & Bobylev 2016 (Astronomy Letters 42, 567), whose fit
+    gives v_c(R0 = 8.3 kpc) = 244 km/s (from memory; their masses in M_gal = 2.325e7 Msun)."""
+    g = Galaxy.from_name("swerve-mw-2")
+    assert g.circular_velocity(8.3)[0] == pytest.approx(244.0, abs=1.0)
+
+
+def test_mw2_against_measured_values():
+    """How far swerve-mw-2 sits from the measured Milky Way (the README states these): v_c(R0)
+    6.5% above Eilers et al. 2019 (229.0 km/s), v_esc(R0) inside Williams et al. 2017 (521 +46/-30),
+    v_esc(50 kpc) 1.5 sd below Williams et al. 2017 (379 -28), v_c(80 kpc) 1.5 sd below Gnedin et
+    al. 2010 (193 -18); each inside 2 sd of the measurement (Eilers: of its 5% systematics)."""
+    g = Galaxy.from_name("swerve-mw-2")
+    vc, vc80 = g.circular_velocity([8.122, 80.0])
+    vesc, vesc50 = g.escape_speed_at_radius([8.122, 50.0])
+    np.testing.assert_allclose([vc, vc80, vesc, vesc50], [244.0, 166.6, 540.1, 336.8], atol=0.1)
+    assert abs(vc - 229.0) < 2 * 0.05 * 229.0
+    assert 521 - 30 <= vesc <= 521 + 46
+    assert 379 - 2 * 28 <= vesc50 <= 379 + 2 * 34
+    assert 193 - 2 * 18 <= vc80 <= 193 + 2 * 38
+
+
+@pytest.mark.parametrize("flattening", ["potential", "density"])
+def test_mw2_agrees_with_galpy(flattening, rng):
+    """swerve-mw-2 (spherical halo) against galpy's Plummer, Miyamoto-Nagai and NFW potentials and
+    a Kepler point mass in physical units: potential and force to 1e-9 relative."""
+    gp = pytest.importorskip("galpy.potential")
+    g = Galaxy.from_name("swerve-mw-2", halo_flattening=flattening)
+    v = g.params
+    ro, vo = 8.0, 220.0
+    mass_unit = vo**2 * ro / su.G  # galpy's mass unit for these ro, vo (G in kpc (km/s)^2/Msun)
+    pots = [
+        gp.KeplerPotential(amp=v["m_bh"] / mass_unit, ro=ro, vo=vo),
+        gp.PlummerPotential(amp=v["m_bulge"] / mass_unit, b=v["b_bulge"] / ro, ro=ro, vo=vo),
+        gp.MiyamotoNagaiPotential(amp=v["m_disk"] / mass_unit, a=v["a_disk"] / ro, b=v["b_disk"] / ro,
+                                  ro=ro, vo=vo),
+        gp.NFWPotential(amp=v["m_halo"] / mass_unit, a=v["r_s"] / ro, ro=ro, vo=vo),
+    ]
+    pos = _points(rng)
+    R = np.hypot(pos[:, 0], pos[:, 1])
+    z, phi = pos[:, 2], np.arctan2(pos[:, 1], pos[:, 0])
+    phi_ref = sum(gp.evaluatePotentials(p, R / ro, z / ro, phi=phi, use_physical=False) for p in pots) * vo**2
+    fR = sum(gp.evaluateRforces(p, R / ro, z / ro, phi=phi, use_physical=False) for p in pots) * vo**2 / ro
+    fz = sum(gp.evaluatezforces(p, R / ro, z / ro, phi=phi, use_physical=False) for p in pots) * vo**2 / ro
+    acc_ref = np.stack([fR * np.cos(phi), fR * np.sin(phi), fz], axis=1)
+    rtol = 1e-9 if flattening == "potential" else 5e-6  # the density form's quadrature: 3.2e-6
+    np.testing.assert_allclose(g.potential(pos), phi_ref, rtol=rtol)
+    err = np.linalg.norm(g.acceleration(pos) - acc_ref, axis=1) / np.linalg.norm(acc_ref, axis=1)
+    assert np.max(err) < rtol
+
+
 def test_enclosed_mass_of_spherical_parts():
     """Hernquist M(<r) = M r^2/(r+a)^2; NFW M(<r) = M (ln(1+x) - x/(1+x)); analytic."""
-    g = Galaxy.default()
+    g = Galaxy.from_name("swerve-mw-1")
     out = g.enclosed_mass([0.7, 24.8])
     np.testing.assert_allclose(out["hernquist"], 3.4e10 * np.array([0.25, (24.8 / 25.5) ** 2]))
     np.testing.assert_allclose(out["nfw_potential_flattened"][1], 0.76e12 * (np.log(2) - 0.5))
@@ -245,6 +302,11 @@ def test_bad_parameters_name_parameter_and_range(kwargs, name):
     assert "\n" not in str(exc.value)
 
 
+def test_plummer_bulge_rejects_a_bad_scale_radius():
+    with pytest.raises(ValueError, match=r"parameter b_bulge = -0.1 is outside its allowed range \(0"):
+        Galaxy.from_name("swerve-mw-2", b_bulge=-0.1)
+
+
 def test_unknown_parameter_and_model_rejected():
     with pytest.raises(ValueError, match="unknown Galaxy parameter"):
         Galaxy.default(q_x=1.0)
@@ -262,6 +324,9 @@ def test_round_trip_dict():
     g2 = Galaxy.from_dict(g.to_dict())
     assert g2.params == g.params
     assert g2.name == "swerve-mw-1+custom"
+    g3 = Galaxy.from_dict(Galaxy.from_name("swerve-mw-2", q_z=0.9).to_dict())
+    assert g3.name == "swerve-mw-2+custom" and g3.halo_flattening == "density"
+    assert g3.params["b_bulge"] == 0.2672
 
 
 # --- the table of component kinds and the formula declarations ---------------------------------------------
@@ -312,3 +377,12 @@ def test_component_classes_register_by_kind_name():
     with pytest.raises(ValueError, match="already declared by HernquistBulge"):
         type("Bulge2", (Component,), {"kind_name": "hernquist"})
     assert COMPONENT_CLASSES["hernquist"] is HernquistBulge
+
+
+def test_plummer_enclosed_mass_is_analytic():
+    """Plummer (1911): M(<r) = M r^3 / (r^2 + b^2)^(3/2); half the mass inside r = b / sqrt(2^(2/3) - 1)."""
+    g = Galaxy([PlummerBulge(m_bulge=1e10, b_bulge=0.3)])
+    r_half = 0.3 / math.sqrt(2 ** (2 / 3) - 1)
+    out = g.enclosed_mass([0.3, r_half])
+    np.testing.assert_allclose(out["plummer"], [1e10 / 2**1.5, 0.5e10], rtol=1e-12)
+    np.testing.assert_allclose(g.circular_velocity(r_half), np.sqrt(su.G * 0.5e10 / r_half), rtol=1e-12)

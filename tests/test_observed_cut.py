@@ -23,7 +23,7 @@ SEL = Selection(r_min=10.0, r_max=60.0, outgoing=True, vlos_min=CUT)
 
 @pytest.fixture(scope="module")
 def world():
-    g = Galaxy.default(q_z=0.9)
+    g = Galaxy.from_name("swerve-mw-1", q_z=0.9)
     bank = build_bank(g, 600, 5, t_max=200.0, dt=2.0, r_min_store=10.0, r_max=60.0)
     launch = BoundedPowerLawSpeed(600.0, 2500.0, -0.5)
     pop = population_from_bank(bank, launch, selection=SEL.true_value_cuts(), solar="v4.0",

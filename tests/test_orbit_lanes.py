@@ -52,6 +52,7 @@ def _accel_lanes(kinds, pars, aux, pos):
 
 GALAXIES = {
     "potential-flattened": lambda: Galaxy.default(q_y=1.1, q_z=0.8),
+    "swerve-mw-2 (Plummer bulge)": lambda: Galaxy.from_name("swerve-mw-2", q_y=1.1, q_z=0.8),
     "density-flattened": lambda: Galaxy.default(q_y=0.9, q_z=1.3, halo_flattening="density"),
     "density, spherical": lambda: Galaxy.default(halo_flattening="density"),
     "point mass": lambda: Galaxy([PointMass(m_bh=4e6)]),

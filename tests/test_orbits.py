@@ -25,7 +25,7 @@ def _hvs(rng, n, t_max=300.0):
 
 @pytest.fixture(scope="module")
 def galaxy():
-    return Galaxy.default(q_z=0.8)
+    return Galaxy.from_name("swerve-mw-1", q_z=0.8)
 
 
 @pytest.fixture(scope="module")
@@ -116,7 +116,7 @@ def test_energy_conserved_on_hvs_orbits(galaxy, rng):
 def test_lz_of_radial_launch_stays_zero(rng):
     pos0, vel0, _ = _hvs(rng, 50)
     for q_y, expect_zero in ((1.0, True), (1.3, False)):
-        res = orbits.integrate(Galaxy.default(q_y=q_y, q_z=0.8), pos0, vel0, 100.0,
+        res = orbits.integrate(Galaxy.from_name("swerve-mw-1", q_y=q_y, q_z=0.8), pos0, vel0, 100.0,
                                t_out=np.linspace(0.0, 100.0, 11), check_density=False)
         x, v = res.pos_out[..., :2], res.vel_out[..., :2]
         R = np.hypot(x[..., 0], x[..., 1])

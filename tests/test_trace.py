@@ -107,7 +107,7 @@ def test_backward_path_matches_gala():
     from gala.integrate import DOPRI853Integrator
     from gala.units import galactic
 
-    g = Galaxy.default()
+    g = Galaxy.from_name("swerve-mw-1")
     pot = gp.CCompositePotential(
         bh=gp.KeplerPotential(m=4e6, units=galactic), bulge=gp.HernquistPotential(m=3.4e10, c=0.7, units=galactic),
         disk=gp.MiyamotoNagaiPotential(m=1e11, a=6.5, b=0.26, units=galactic),

@@ -19,6 +19,7 @@ from .galaxy.dispatch import (
     KIND_MIYAMOTO_NAGAI,
     KIND_NFW_DENSITY_FLAT,
     KIND_NFW_POTENTIAL_FLAT,
+    KIND_PLUMMER,
     KIND_POINT_MASS,
 )
 
@@ -107,6 +108,12 @@ def accel_lanes(kinds, pars, aux, X, Y, Z):
                 ax = S.add(ax, S.mul(S.add(g, S.mul(S.splat(k), sx)), X))
                 ay = S.add(ay, S.mul(S.add(g, S.mul(S.splat(k), sy)), Y))
                 az = S.add(az, S.mul(S.add(g, S.mul(S.splat(k), sz)), Z))
+        elif kind == KIND_PLUMMER:
+            d2 = S.add(S.add(S.add(S.mul(X, X), S.mul(Y, Y)), S.mul(Z, Z)), S.splat(p[1]))
+            f = S.div(S.splat((-p[0])), S.mul(d2, S.sqrt(d2)))
+            ax = S.add(ax, S.mul(f, X))
+            ay = S.add(ay, S.mul(f, Y))
+            az = S.add(az, S.mul(f, Z))
         else:
             nan = S.splat(math.nan)
             ax = nan

@@ -2,7 +2,7 @@
 
 One design point is one Galaxy (the inferred Galaxy parameters at that point, the others
 fixed): integrate one trajectory bank (:func:`swerve.bank.build_bank`), then, by reweighting
-only (DESIGN.md §4), build the selected present-day population at ``points_per_galaxy``
+only (:mod:`swerve.bank`), build the selected present-day population at ``points_per_galaxy``
 launch-model points and compute their summaries (:mod:`swerve.summaries`).  The emulator
 learns the summaries as a function of (Galaxy parameters, launch parameters).
 
@@ -39,7 +39,7 @@ from .bank import build_bank
 from .config import Key, Schema, Section, config_hash, load_config, validate
 from .fileio import did_you_mean
 from .frames import SolarParameters
-from .galaxy import Galaxy
+from .galaxy import DEFAULT_GALAXY, Galaxy
 from .launch import BoundedPowerLawSpeed
 from .population import select_bank
 from .selection import Selection
@@ -49,7 +49,7 @@ LAUNCH_MODELS = ("power-law",)
 
 TRAIN_SCHEMA = Schema("train", (
     Section("galaxy", (
-        Key("model", "str", "swerve-mw-1", doc="named Galaxy model the fixed parameters start from"),
+        Key("model", "str", DEFAULT_GALAXY, doc="named Galaxy model the fixed parameters start from"),
         Key("halo_flattening", "str", "density", choices=("density", "potential"),
             doc="flatten the NFW halo in the density (physical) or in the potential (fast)"),
         Key("infer", "table", {"q_y": [0.7, 1.3], "q_z": [0.7, 1.3]},

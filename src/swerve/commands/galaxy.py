@@ -63,7 +63,7 @@ def _print_lmc(s: dict) -> None:
 
 
 def run(args) -> int:
-    from ..galaxy import DEFAULT_GALAXY, GALAXY_MODELS, Galaxy  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+    from ..galaxy import DEFAULT_GALAXY, GALAXY_MODELS, Galaxy, parameter_source  # noqa: PLC0415 - lazy: keeps the CLI's start fast
     from ..galaxy.measurements import MEASUREMENTS  # noqa: PLC0415 - lazy: keeps the CLI's start fast
 
     try:
@@ -103,8 +103,9 @@ def run(args) -> int:
                 unit = p.unit or ""
                 changed = "  (changed)" if p.name in params else ""
                 print(f"    {p.name:<8} = {val:<11.5g} {unit:<5} {p.doc}{changed}")
-                if p.source and not changed:
-                    print(f"    {'':<8}   source: {p.source}")
+                source = parameter_source(g.name, p.name, p.source)
+                if source and not changed:
+                    print(f"    {'':<8}   source: {source}")
         print()
         if lmc is not None:
             _print_lmc(lmc)

@@ -5,6 +5,7 @@ from .components import (
     HernquistBulge,
     MiyamotoNagaiDisk,
     NFWHaloPotentialFlat,
+    PlummerBulge,
     PointMass,
     negative_density_radius_scaled,
 )
@@ -16,6 +17,7 @@ from .model import (
     Galaxy,
     NegativeDensityWarning,
     component_class,
+    parameter_source,
 )
 from .nfw_density import NFWHaloDensityFlat
 from .params import Parameter
@@ -35,9 +37,11 @@ __all__ = [
     "NFWHaloPotentialFlat",
     "NegativeDensityWarning",
     "Parameter",
+    "PlummerBulge",
     "PointMass",
     "component_class",
     "lmc_orbit",
     "lmc_summary",
     "negative_density_radius_scaled",
+    "parameter_source",
 ]

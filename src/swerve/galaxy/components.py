@@ -180,6 +180,34 @@ class HernquistBulge(Component):
         return m * r**2 / (r + a) ** 2
 
 
+class PlummerBulge(Component):
+    """Plummer (1911) sphere: Phi = -G M / sqrt(r^2 + b^2) (a Miyamoto-Nagai disk with a = 0)."""
+
+    kind_name = "plummer"
+    parameters = (
+        _mass("m_bulge", 443 * 2.325e7, "bulge mass",
+              "Bajkova & Bobylev 2016, Astronomy Letters 42, 567: 443 M_gal, M_gal = 2.325e7 Msun "
+              "(from memory)"),
+        _length("b_bulge", 0.2672, "bulge scale radius",
+                "Bajkova & Bobylev 2016, Astronomy Letters 42, 567 (from memory)"),
+    )
+
+    def _compile(self):
+        v = self.values
+        return kernels.KIND_PLUMMER, [units.G * v["m_bulge"], v["b_bulge"] ** 2], _NO_AUX
+
+    def density(self, pos):
+        p = _as_points(pos)
+        m, b = self.values["m_bulge"], self.values["b_bulge"]
+        r2 = np.sum(p**2, axis=1)
+        return 3.0 * m / (4.0 * np.pi * b**3) * (1.0 + r2 / b**2) ** -2.5
+
+    def enclosed_mass(self, r):
+        m, b = self.values["m_bulge"], self.values["b_bulge"]
+        r = np.asarray(r, dtype=float)
+        return m * r**3 / (r**2 + b**2) ** 1.5
+
+
 class MiyamotoNagaiDisk(Component):
     """Miyamoto & Nagai (1975) disk: Phi = -G M / sqrt(R^2 + (a + sqrt(z^2 + b^2))^2)."""
 

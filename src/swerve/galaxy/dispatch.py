@@ -14,6 +14,8 @@ from .formulas import (
     miyamoto_nagai_potential,
     nfw_potential_flat_accel,
     nfw_potential_flat_potential,
+    plummer_accel,
+    plummer_potential,
     point_mass_accel,
     point_mass_potential,
 )
@@ -28,6 +30,8 @@ KIND_MIYAMOTO_NAGAI = 2
 KIND_NFW_POTENTIAL_FLAT = 3
 #: pars row: layout owned by swerve.galaxy.expansion
 KIND_NFW_DENSITY_FLAT = 4
+#: pars row: [GM, b^2]
+KIND_PLUMMER = 5
 
 _jit = nb.njit(cache=True, fastmath=False, inline="always")
 
@@ -45,6 +49,8 @@ def component_accel(kind, p, aux, x, y, z):
         return nfw_potential_flat_accel(p, aux, x, y, z)
     elif kind == KIND_NFW_DENSITY_FLAT:
         return expansion_accel(p, aux, x, y, z)
+    elif kind == KIND_PLUMMER:
+        return plummer_accel(p, aux, x, y, z)
     return math.nan, math.nan, math.nan
 
 
@@ -61,4 +67,6 @@ def component_potential(kind, p, aux, x, y, z):
         return nfw_potential_flat_potential(p, aux, x, y, z)
     elif kind == KIND_NFW_DENSITY_FLAT:
         return expansion_potential(p, aux, x, y, z)
+    elif kind == KIND_PLUMMER:
+        return plummer_potential(p, aux, x, y, z)
     return math.nan

@@ -98,6 +98,21 @@ def hernquist_potential(p, aux, x, y, z):
     return -p[0] / (r + p[1])
 
 
+# --- Plummer sphere: pars [GM, b^2] -------------------------------------------------------------
+@_jit
+def plummer_accel(p, aux, x, y, z):
+    """Plummer (1911) sphere: a = -GM x / (r^2 + b^2)^(3/2) (the Miyamoto-Nagai disk with a = 0)."""
+    d2 = x * x + y * y + z * z + p[1]
+    f = -p[0] / (d2 * math.sqrt(d2))
+    return f * x, f * y, f * z
+
+
+@_jit
+def plummer_potential(p, aux, x, y, z):
+    """Phi = -GM / sqrt(r^2 + b^2)."""
+    return -p[0] / math.sqrt(x * x + y * y + z * z + p[1])
+
+
 # --- Miyamoto-Nagai disk: pars [GM, a, b] ------------------------------------------------------------
 @_jit
 def miyamoto_nagai_accel(p, aux, x, y, z):

@@ -30,6 +30,7 @@ from .dispatch import (  # generated from COMPONENT_KINDS by dev/generate_lanes.
     KIND_MIYAMOTO_NAGAI,
     KIND_NFW_DENSITY_FLAT,
     KIND_NFW_POTENTIAL_FLAT,
+    KIND_PLUMMER,
     KIND_POINT_MASS,
     component_accel,
     component_potential,
@@ -41,6 +42,7 @@ __all__ = [
     "KIND_MIYAMOTO_NAGAI",
     "KIND_NFW_DENSITY_FLAT",
     "KIND_NFW_POTENTIAL_FLAT",
+    "KIND_PLUMMER",
     "KIND_POINT_MASS",
     "N_PAR",
     "KernelKind",
@@ -100,6 +102,8 @@ COMPONENT_KINDS: tuple[KernelKind, ...] = (
                expansion.expansion_accel, expansion.expansion_potential,
                lanes={"spherical": expansion.LANES_SPHERICAL, "head": expansion.LANES_HEAD,
                       "node": expansion.LANES_NODE, "tail": expansion.LANES_TAIL}),
+    KernelKind("KIND_PLUMMER", "[GM, b^2]",
+               formulas.plummer_accel, formulas.plummer_potential),
 )
 
 _jit = nb.njit(cache=True, fastmath=False, inline="always")

@@ -21,6 +21,11 @@ class NegativeDensityWarning(UserWarning):
 # HALO_FLATTENINGS (halo component classes by flattening) and COMPONENT_CLASSES (component
 # classes by kind name) are filled by the component classes themselves (components.py)
 
+#: the mass unit of Irrgang et al. 2013 and Bajkova & Bobylev 2016 (G = 1 with kpc and 10 km/s),
+#: in Msun: (10 km/s)^2 kpc / G = 2.3251e7, quoted as 2.325e7 by those papers (from memory)
+_M_GAL = 2.325e7
+_BB16 = "Bajkova & Bobylev 2016, Astronomy Letters 42, 567, model III (from memory)"
+
 #: Named, versioned Galaxy models. Each value of each model carries its source in the
 #: component's parameter declaration; outputs record the resolved name, never "latest".
 GALAXY_MODELS: dict[str, dict] = {
@@ -38,10 +43,43 @@ GALAXY_MODELS: dict[str, dict] = {
         ],
         "halo_flattening": "potential",
     },
+    "swerve-mw-2": {
+        "description": (
+            "Point-mass black hole; Plummer bulge, Miyamoto-Nagai disk and NFW halo of model III "
+            "of Bajkova & Bobylev 2016 (Astronomy Letters 42, 567; from memory), fitted to the "
+            "rotation curve out to 200 kpc: their R0 = 8.3 kpc, v_c(R0) = 244 km/s; masses in their "
+            "unit M_gal = 2.325e7 Msun. The halo is flattened in the density (positive everywhere)"
+        ),
+        "components": [
+            ("point_mass", {"m_bh": 4.0e6}),
+            ("plummer", {"m_bulge": 443 * _M_GAL, "b_bulge": 0.2672}),
+            ("miyamoto_nagai", {"m_disk": 2798 * _M_GAL, "a_disk": 4.40, "b_disk": 0.3084}),
+            ("halo", {"m_halo": 12474 * _M_GAL, "r_s": 7.7, "q_y": 1.0, "q_z": 1.0}),
+        ],
+        "sources": {
+            "m_bulge": f"{_BB16}: 443 M_gal",
+            "b_bulge": _BB16,
+            "m_disk": f"{_BB16}: 2798 M_gal",
+            "a_disk": _BB16,
+            "b_disk": _BB16,
+            "m_halo": f"{_BB16}: 12474 M_gal (NFW scale mass, Phi = -G M ln(1 + r/r_s) / r)",
+            "r_s": _BB16,
+        },
+        "halo_flattening": "density",
+    },
 }
 
 #: the name of the default Galaxy model
+# swerve-mw-2 is to replace it (issue 21, item 6) once an emulator trained on it passes calibration:
+# the first one did not (training/default-mw2.toml; benchmarks/RESULTS.md, "A second Galaxy model")
 DEFAULT_GALAXY = "swerve-mw-1"
+
+
+def parameter_source(model: str, name: str, declared: str) -> str:
+    """The source of parameter ``name``'s value in named model ``model`` (``declared``: the
+    source in the parameter's declaration, used where the model names none)."""
+    spec = GALAXY_MODELS.get(model.split("+")[0], {})
+    return spec.get("sources", {}).get(name, declared)
 
 #: former name of the registry of component classes by kind name
 _COMPONENT_KINDS = COMPONENT_CLASSES
