@@ -77,7 +77,7 @@ def test_energy_pruning_is_exact(bank_sph):
 
 
 def test_vphi_zero_axisymmetric_nonzero_triaxial(bank_sph, bank_tri):
-    """Radial launches keep L_z = 0 in an axisymmetric Galaxy (DESIGN.md §3)."""
+    """Radial launches keep L_z = 0 in an axisymmetric Galaxy (angular momentum about z is conserved: analytic)."""
     for b, triaxial in ((bank_sph, False), (bank_tri, True)):
         c = spherical_components(b.pos.astype(float), b.vel.astype(float))
         speed = np.linalg.norm(b.vel.astype(float), axis=1)

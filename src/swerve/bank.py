@@ -3,7 +3,7 @@
 A :class:`TrajectoryBank` holds, for one Galaxy, the positions and velocities of many radial
 launches sampled at regular flight times, kept only while inside a region of interest. Any
 launch model (speed distribution, lifetimes, maximum flight time) is then a *reweighting* of
-the stored samples (DESIGN.md §4), with no new integration: see :func:`sample_weights`.
+the stored samples, with no new integration: see :func:`sample_weights`.
 
 Construction (:func:`build_bank`)
 ---------------------------------

@@ -1,6 +1,6 @@
 """The published KS-test baseline of halo-shape inference from hypervelocity stars.
 
-The method compared against in the validation harness (DESIGN.md §7): for a catalog, compute
+The method compared against in the validation harness: for a catalog, compute
 every star's folded polar deflection ``v_θ' = v_θ · sign(z)`` from its *observed*
 heliocentric values taken at face value (its measured distance, or 1/parallax when it has
 none, moved to the Galactocentric frame), then, for every value ``q`` of a grid of halo

@@ -1,7 +1,7 @@
 """The validation harness: is the emulator-driven inference right, and how powerful is it?
 
 Against held-out full simulations (Galaxy points not in the training design, made by
-``swerve train CONFIG --held-out``), DESIGN.md §7:
+``swerve train CONFIG --held-out``):
 
 accuracy
     For every held-out point and launch point, the emulated summaries against the simulated

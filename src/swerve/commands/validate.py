@@ -1,4 +1,4 @@
-"""``swerve validate``: check an emulator against held-out full simulations (DESIGN.md §7).
+"""``swerve validate``: check an emulator against held-out full simulations.
 
 Writes to ``--out``: ``validation.json`` (sections ``settings``, ``accuracy``, ``calibration``,
 ``power``; layout in :func:`swerve.validation.run_validation`), ``accuracy.png``,
