@@ -71,7 +71,7 @@ GALAXY_MODELS: dict[str, dict] = {
 
 #: the name of the default Galaxy model
 # swerve-mw-2 is to replace it (issue 21, item 6) once an emulator trained on it passes calibration:
-# the first one did not (training/default-mw2.toml; benchmarks/RESULTS.md, "A second Galaxy model")
+# the first one failed on one of two seeds (training/default-mw2.toml; benchmarks/RESULTS.md, "A second Galaxy model")
 DEFAULT_GALAXY = "swerve-mw-1"
 
 
