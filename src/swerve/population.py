@@ -313,7 +313,9 @@ class SelectedSamples:
         meta.update({"galaxy": bank.galaxy, "launch": info["launch"], "flight_time_max": info["flight_time_max"],
                      "bank": {"seed": bank.seed, "n_orbits": bank.n_orbits, "directions": bank.directions,
                               "proposal": bank.proposal.to_dict(), "dt": bank.dt, "t_max": bank.t_max,
-                              "r_min_store": bank.r_min_store, "r_max": bank.r_max},
+                              "r_min_store": bank.r_min_store, "r_max": bank.r_max,
+                              # the time-dependent forward model (swerve.bank_lmc) and its LMC, if any
+                              **{k: bank.info[k] for k in ("forward_model", "lmc") if k in bank.info}},
                      "launch_missing_fraction": info["missing_fraction"],
                      "selection_removed": dict(self.meta.get("selection_removed", {}),
                                                **{"launch model (zero weight)": n_zero})})

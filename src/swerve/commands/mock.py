@@ -88,6 +88,12 @@ def _schema():
             Key("v_lo", "float", 500.0, min=0.0, exclusive_min=True, doc="lowest proposal launch speed, km/s"),
             Key("v_hi", "float", 5000.0, min=0.0, exclusive_min=True, doc="highest proposal launch speed, km/s"),
         ), doc="the trajectory bank"),
+        Section("lmc", (
+            Key("enabled", "bool", False, doc="make the mock in the Galaxy perturbed by the LMC (time-dependent: one "
+                "orbit per present-day star, launched at its own epoch; swerve.bank_lmc)"),
+            Key("m_lmc", "float", None, min=0.0, doc="LMC mass, Msun (default 1.38e11, Erkal et al. 2019)"),
+            Key("orbits", "int", 40000, min=1, doc="orbits of the LMC bank (whole sky; each gives at most one star)"),
+        ), doc="the Large Magellanic Cloud"),
     ), doc="swerve mock configuration")
 
 
@@ -140,6 +146,12 @@ def add_parser(sub):
     p.add_argument("--bank-file", default=None, metavar="FILE.npz", help="use a saved trajectory bank")
     p.add_argument("--save-bank", default=None, metavar="FILE.npz", help="save the bank built here")
     p.add_argument("--bank-dt", type=float, default=None, metavar="MYR", help="flight-time step of the bank (default 1)")
+    p.add_argument("--lmc", action="store_true", default=None,
+                   help="make the mock in the Galaxy perturbed by the Large Magellanic Cloud (its past orbit with "
+                        "dynamical friction and the Milky Way's reflex): every star integrated from its own launch "
+                        "epoch over the whole sky, 40000 orbits by default ([lmc] orbits; about 10 s)")
+    p.add_argument("--lmc-mass", type=float, default=None, metavar="MSUN",
+                   help="LMC mass (default 1.38e11 Msun, Erkal et al. 2019; range 0-2.5e11); implies --lmc")
     p.add_argument("--solar", default=None, metavar="NAME", help="solar-parameter set (default v4.0)")
     p.add_argument("--truth", action="store_true", default=None, help="also write true values (true_* columns)")
     p.set_defaults(func=run)
@@ -181,10 +193,15 @@ def _config(args):
                                         ("--flight-time-max", "launch", "flight_time_max", args.flight_time_max),
                                         ("--error-pm-corr", "errors", "corr_pmra_pmdec", args.error_pm_corr),
                                         ("--bank-size", "bank", "size", args.bank_size),
-                                        ("--bank-dt", "bank", "dt", args.bank_dt)):
+                                        ("--bank-dt", "bank", "dt", args.bank_dt),
+                                        ("--lmc-mass", "lmc", "m_lmc", args.lmc_mass)):
         check_option(option, value, schema, section, key)  # a bad value named by its flag
     cfg = load_config(args.config, schema) if args.config else validate({}, schema, source="<defaults>")
     top, gal, lau, sel, err, bank = (cfg[k] for k in ("", "galaxy", "launch", "selection", "errors", "bank"))
+    if args.lmc or args.lmc_mass is not None:
+        cfg["lmc"]["enabled"] = True
+    if args.lmc_mass is not None:
+        cfg["lmc"]["m_lmc"] = args.lmc_mass
     for opt, key in (("n", "n"), ("seed", "seed"), ("out", "out"), ("solar", "solar"), ("truth", "include_truth")):
         if getattr(args, opt) is not None:
             top[key] = getattr(args, opt)
@@ -292,8 +309,23 @@ def run(args) -> int:
     galaxy, launch, selection, errors = _build(cfg, params)
     t0 = time.perf_counter()
     rng = np.random.default_rng(top["seed"])
+    lcfg = cfg["lmc"]
     if bcfg["file"]:
         bank = load_bank(bcfg["file"])
+    elif lcfg["enabled"]:
+        from ..bank_lmc import build_lmc_bank  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+        from ..galaxy.lmc import LMC  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+
+        try:
+            lmc = LMC() if lcfg["m_lmc"] is None else LMC(m_lmc=lcfg["m_lmc"])
+        except ValueError as exc:
+            raise CommandError(f"[lmc] m_lmc / --lmc-mass: {exc}") from None
+        r_min, r_max = bank_region(selection, top["solar"])
+        bank = build_lmc_bank(galaxy, lcfg["orbits"], int(rng.integers(2 ** 31 - 1)), lmc=lmc,
+                              t_max=lau["flight_time_max"], v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"],
+                              r_min_store=r_min, r_max=r_max, solar=top["solar"])
+        if bcfg["save"]:
+            save_bank(bank, bcfg["save"])
     else:
         r_min, r_max = bank_region(selection, top["solar"])
         bank = build_bank(galaxy, bcfg["size"], int(rng.integers(2 ** 31 - 1)), t_max=lau["flight_time_max"],
