@@ -90,6 +90,8 @@ from .units import positive_float
 __all__ = [
     "BANK_FORMAT_VERSION",
     "STATUS_PRUNED",
+    "check_bank_arguments",
+    "draw_launches",
     "BankCoverageError",
     "HillsAliveTable",
     "SpeedProposal",
@@ -362,6 +364,35 @@ def _sobol(n, seed):
     return eng.random_base2(m)[:n]  # a power-of-two prefix keeps the balance properties
 
 
+def check_bank_arguments(n_orbits, seed, t_max, r0, r_max, r_min_store):
+    """The arguments every bank builder shares, checked (one-line ValueError naming the argument)
+    and converted: ``(n_orbits, seed, t_max, r0, r_max, r_min_store)``."""
+    if isinstance(n_orbits, bool) or not isinstance(n_orbits, (int, np.integer)) or n_orbits < 1:
+        raise ValueError(f"n_orbits: expected a positive integer, got {n_orbits!r}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ValueError(f"seed: expected a non-negative integer, got {seed!r}")
+    t_max = _check_positive("t_max", t_max, "Myr")
+    r0 = _check_positive("r0", r0, "kpc")
+    r_max = _check_positive("r_max", r_max, "kpc")
+    r_min_store = float(r_min_store)
+    if not (math.isfinite(r_min_store) and 0.0 <= r_min_store < r_max):
+        raise ValueError(f"r_min_store: expected a radius in [0, r_max = {r_max:g}) kpc, got {r_min_store!r}")
+    return int(n_orbits), int(seed), t_max, r0, r_max, r_min_store
+
+
+def draw_launches(n_orbits: int, seed: int, directions: str, proposal: SpeedProposal):
+    """Unit launch directions (positive octant or whole sphere), launch speeds from the proposal
+    and flight-time phases in [0, 1), from one scrambled Sobol sequence (module docstring)."""
+    u = _sobol(n_orbits, int(seed))
+    if directions == "octant":
+        cos_t, ph = u[:, 0], 0.5 * math.pi * u[:, 1]
+    else:
+        cos_t, ph = 2.0 * u[:, 0] - 1.0, 2.0 * math.pi * u[:, 1]
+    sin_t = np.sqrt(np.clip(1.0 - cos_t * cos_t, 0.0, 1.0))
+    dirs = np.stack([sin_t * np.cos(ph), sin_t * np.sin(ph), cos_t], axis=1)
+    return dirs, proposal.ppf(u[:, 2]), u[:, 3]
+
+
 # --------------------------------------------------------------------------------------------
 # build
 
@@ -412,17 +443,9 @@ def build_bank(galaxy, n_orbits: int, seed: int, *, t_max: float = 300.0, dt: fl
     TrajectoryBank
     """
     g = _galaxy_of(galaxy)
-    if isinstance(n_orbits, bool) or not isinstance(n_orbits, (int, np.integer)) or n_orbits < 1:
-        raise ValueError(f"n_orbits: expected a positive integer, got {n_orbits!r}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed: expected a non-negative integer, got {seed!r}")
-    t_max = _check_positive("t_max", t_max, "Myr")
+    n_orbits, seed, t_max, r0, r_max, r_min_store = check_bank_arguments(n_orbits, seed, t_max, r0, r_max,
+                                                                         r_min_store)
     dt = _check_positive("dt", dt, "Myr")
-    r0 = _check_positive("r0", r0, "kpc")
-    r_max = _check_positive("r_max", r_max, "kpc")
-    r_min_store = float(r_min_store)
-    if not (math.isfinite(r_min_store) and 0.0 <= r_min_store < r_max):
-        raise ValueError(f"r_min_store: expected a radius in [0, r_max = {r_max:g}) kpc, got {r_min_store!r}")
     if r_stop == "auto":
         r_stop_v = r_max
     elif r_stop is None:
@@ -442,15 +465,7 @@ def build_bank(galaxy, n_orbits: int, seed: int, *, t_max: float = 300.0, dt: fl
     dt = t_max / k_t
 
     t_start = time.perf_counter()
-    u = _sobol(n_orbits, int(seed))
-    if directions == "octant":
-        cos_t, ph = u[:, 0], 0.5 * math.pi * u[:, 1]
-    else:
-        cos_t, ph = 2.0 * u[:, 0] - 1.0, 2.0 * math.pi * u[:, 1]
-    sin_t = np.sqrt(np.clip(1.0 - cos_t * cos_t, 0.0, 1.0))
-    dirs = np.stack([sin_t * np.cos(ph), sin_t * np.sin(ph), cos_t], axis=1)
-    v_launch = proposal.ppf(u[:, 2])
-    phase = u[:, 3]
+    dirs, v_launch, phase = draw_launches(n_orbits, seed, directions, proposal)
 
     # energy pruning: launches that can never reach r_min_store
     phi_min = _sphere_min_potential(g, r_min_store) if r_min_store > 0 else -math.inf

@@ -50,10 +50,10 @@ from .bank import (
     STATUS_PRUNED,
     SpeedProposal,
     TrajectoryBank,
-    _check_positive,
     _galaxy_of,
-    _sobol,
     _sphere_min_potential,
+    check_bank_arguments,
+    draw_launches,
     reach_speed,
 )
 from .galaxy.lmc import LMC, lmc_orbit
@@ -110,30 +110,16 @@ def build_lmc_bank(galaxy, n_orbits: int, seed: int, *, lmc: LMC | None = None, 
     lmc = LMC() if lmc is None else lmc
     if not isinstance(lmc, LMC):
         raise ValueError(f"lmc: expected a swerve.galaxy.lmc.LMC, got {type(lmc).__name__}")
-    if isinstance(n_orbits, bool) or not isinstance(n_orbits, (int, np.integer)) or n_orbits < 1:
-        raise ValueError(f"n_orbits: expected a positive integer, got {n_orbits!r}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed: expected a non-negative integer, got {seed!r}")
-    t_max = _check_positive("t_max", t_max, "Myr")
-    r0 = _check_positive("r0", r0, "kpc")
-    r_max = _check_positive("r_max", r_max, "kpc")
-    r_min_store = float(r_min_store)
-    if not (math.isfinite(r_min_store) and 0.0 <= r_min_store < r_max):
-        raise ValueError(f"r_min_store: expected a radius in [0, r_max = {r_max:g}) kpc, got {r_min_store!r}")
+    n_orbits, seed, t_max, r0, r_max, r_min_store = check_bank_arguments(n_orbits, seed, t_max, r0, r_max,
+                                                                         r_min_store)
     prune_margin = float(prune_margin)
     if not (math.isfinite(prune_margin) and prune_margin >= 0.0):
         raise ValueError(f"prune_margin: expected a non-negative energy in (km/s)^2, got {prune_margin!r}")
     proposal = SpeedProposal(v_lo, v_hi)
-    n_orbits = int(n_orbits)
 
     t_start = time.perf_counter()
     track = lmc_orbit(g, lmc, t_min=-(t_max + 5.0), friction=friction, reflex=reflex, solar=solar)
-    u = _sobol(n_orbits, int(seed))
-    cos_t, ph = 2.0 * u[:, 0] - 1.0, 2.0 * math.pi * u[:, 1]
-    sin_t = np.sqrt(np.clip(1.0 - cos_t * cos_t, 0.0, 1.0))
-    dirs = np.stack([sin_t * np.cos(ph), sin_t * np.sin(ph), cos_t], axis=1)
-    v_launch = proposal.ppf(u[:, 2])
-    phase = u[:, 3]
+    dirs, v_launch, phase = draw_launches(n_orbits, seed, "sphere", proposal)
     t_flight = phase * t_max
 
     phi_min = _sphere_min_potential(g, r_min_store) if r_min_store > 0 else -math.inf
