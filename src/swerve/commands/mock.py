@@ -312,24 +312,23 @@ def run(args) -> int:
     lcfg = cfg["lmc"]
     if bcfg["file"]:
         bank = load_bank(bcfg["file"])
-    elif lcfg["enabled"]:
-        from ..bank_lmc import build_lmc_bank  # noqa: PLC0415 - lazy: keeps the CLI's start fast
-        from ..galaxy.lmc import LMC  # noqa: PLC0415 - lazy: keeps the CLI's start fast
-
-        try:
-            lmc = LMC() if lcfg["m_lmc"] is None else LMC(m_lmc=lcfg["m_lmc"])
-        except ValueError as exc:
-            raise CommandError(f"[lmc] m_lmc / --lmc-mass: {exc}") from None
-        r_min, r_max = bank_region(selection, top["solar"])
-        bank = build_lmc_bank(galaxy, lcfg["orbits"], int(rng.integers(2 ** 31 - 1)), lmc=lmc,
-                              t_max=lau["flight_time_max"], v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"],
-                              r_min_store=r_min, r_max=r_max, solar=top["solar"])
-        if bcfg["save"]:
-            save_bank(bank, bcfg["save"])
     else:
         r_min, r_max = bank_region(selection, top["solar"])
-        bank = build_bank(galaxy, bcfg["size"], int(rng.integers(2 ** 31 - 1)), t_max=lau["flight_time_max"],
-                          dt=bcfg["dt"], v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"], r_min_store=r_min, r_max=r_max)
+        bank_seed = int(rng.integers(2 ** 31 - 1))
+        if lcfg["enabled"]:  # the time-dependent forward model: one orbit per present-day star
+            from ..bank_lmc import build_lmc_bank  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+            from ..galaxy.lmc import LMC  # noqa: PLC0415 - lazy: keeps the CLI's start fast
+
+            try:
+                lmc = LMC() if lcfg["m_lmc"] is None else LMC(m_lmc=lcfg["m_lmc"])
+            except ValueError as exc:
+                raise CommandError(f"[lmc] m_lmc / --lmc-mass: {exc}") from None
+            bank = build_lmc_bank(galaxy, lcfg["orbits"], bank_seed, lmc=lmc, t_max=lau["flight_time_max"],
+                                  v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"], r_min_store=r_min, r_max=r_max,
+                                  solar=top["solar"])
+        else:
+            bank = build_bank(galaxy, bcfg["size"], bank_seed, t_max=lau["flight_time_max"], dt=bcfg["dt"],
+                              v_lo=bcfg["v_lo"], v_hi=bcfg["v_hi"], r_min_store=r_min, r_max=r_max)
         if bcfg["save"]:
             save_bank(bank, bcfg["save"])
     log.info(bank.summary())
