@@ -20,6 +20,7 @@ import numpy as np
 
 from swerve.bank import build_bank
 from swerve.bank_lmc import build_lmc_bank
+from swerve.frames import folded_v_theta
 from swerve.galaxy import Galaxy
 from swerve.galaxy.lmc import LMC
 from swerve.launch import BoundedPowerLawSpeed
@@ -80,17 +81,9 @@ def main():
     common = np.intersect1d(b0.orbit, b1.orbit)
     i0, i1 = np.searchsorted(b0.orbit, common), np.searchsorted(b1.orbit, common)
 
-    def vth(pos, vel):
-        pos, vel = pos.astype(float), vel.astype(float)
-        r = np.linalg.norm(pos, axis=1)
-        rc = np.hypot(pos[:, 0], pos[:, 1])
-        e = np.stack([pos[:, 0] * pos[:, 2] / (r * rc), pos[:, 1] * pos[:, 2] / (r * rc), -rc / r], axis=1)
-        return -np.sum(vel * e, axis=1) * np.sign(pos[:, 2]), r
-
-    v0, r0 = vth(b0.pos[i0], b0.vel[i0])
-    v1, _ = vth(b1.pos[i1], b1.vel[i1])
-    d = v1 - v0
-    far = r0 > 50.0
+    p0, p1 = b0.pos[i0].astype(float), b1.pos[i1].astype(float)
+    d = folded_v_theta(p1, b1.vel[i1].astype(float)) - folded_v_theta(p0, b0.vel[i0].astype(float))
+    far = np.linalg.norm(p0, axis=1) > 50.0
     print(f"same launches with and without the LMC ({len(common)} stars stored in both): rms change of v_theta' "
           f"{np.sqrt(np.mean(d**2)):.2f} km/s, beyond 50 kpc {np.sqrt(np.mean(d[far]**2)):.2f} km/s "
           f"({int(far.sum())} stars); position change median "

@@ -10,6 +10,7 @@ from swerve import orbits
 from swerve.bank import _sphere_min_potential, build_bank, load_bank, save_bank
 from swerve.bank_lmc import DEFAULT_PRUNE_MARGIN, build_lmc_bank
 from swerve.cli import main
+from swerve.frames import folded_v_theta
 from swerve.galaxy import Galaxy
 from swerve.galaxy.lmc import LMC, lmc_orbit
 from swerve.launch import BoundedPowerLawSpeed
@@ -79,14 +80,8 @@ def test_the_lmc_moves_the_deflection_by_a_few_km_s(bank0, bank1):
     i0 = np.searchsorted(bank0.orbit, common)
     i1 = np.searchsorted(bank1.orbit, common)
 
-    def vtheta_folded(pos, vel):
-        pos, vel = pos.astype(float), vel.astype(float)
-        r = np.linalg.norm(pos, axis=1)
-        rc = np.hypot(pos[:, 0], pos[:, 1])
-        e_theta = np.stack([pos[:, 0] * pos[:, 2] / (r * rc), pos[:, 1] * pos[:, 2] / (r * rc), -rc / r], axis=1)
-        return np.sum(vel * e_theta, axis=1) * np.sign(pos[:, 2]) * -1.0
-
-    d = vtheta_folded(bank1.pos[i1], bank1.vel[i1]) - vtheta_folded(bank0.pos[i0], bank0.vel[i0])
+    d = (folded_v_theta(bank1.pos[i1].astype(float), bank1.vel[i1].astype(float))
+         - folded_v_theta(bank0.pos[i0].astype(float), bank0.vel[i0].astype(float)))
     rms = float(np.sqrt(np.mean(d**2)))
     assert len(common) > 500
     assert 2.0 < rms < 15.0, rms
